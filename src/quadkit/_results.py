@@ -1,0 +1,98 @@
+"""Building measurement results and turning them into plain JSON-able Python."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+import xarray as xr
+
+__all__ = ["quantity", "result", "to_json"]
+
+
+def quantity(value: Any, units: str, long_name: str, dims: tuple[str, ...] | str = ()) -> xr.DataArray:
+    """A result variable with its ``units`` and ``long_name`` attrs.
+
+    ``value`` may be a scalar, a numpy/dask array (give ``dims``) or a DataArray (kept, attrs
+    added).
+    """
+    if isinstance(dims, str):
+        dims = (dims,)
+    if isinstance(value, xr.DataArray):
+        out = value.copy(deep=False)
+    else:
+        out = xr.DataArray(value, dims=dims)
+    out.attrs = {**out.attrs, "units": units, "long_name": long_name}
+    return out
+
+
+def result(
+    variables: Mapping[str, xr.DataArray],
+    *,
+    coords: Mapping[str, Any] | None = None,
+    attrs: Mapping[str, Any] | None = None,
+) -> xr.Dataset:
+    """A measurement result: one data variable per figure, each with units and long_name."""
+    for name, var in variables.items():
+        if "units" not in var.attrs or "long_name" not in var.attrs:
+            raise AssertionError(f"result variable {name!r} lacks units or long_name")
+    ds = xr.Dataset(dict(variables), coords=coords, attrs=dict(attrs or {}))
+    return ds
+
+
+def _plain(value: Any) -> Any:
+    if isinstance(value, (xr.DataArray, xr.Variable)):
+        return _plain(value.values)
+    if isinstance(value, np.ndarray):
+        if value.ndim == 0:
+            return _plain(value.item())
+        return [_plain(v) for v in value]
+    if isinstance(value, (np.generic,)):
+        return _plain(value.item())
+    if isinstance(value, bool) or value is None or isinstance(value, str):
+        return value
+    if isinstance(value, int):
+        return value
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, complex):
+        return {"real": _plain(value.real), "imag": _plain(value.imag)}
+    if isinstance(value, Mapping):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (np.datetime64,)):
+        return str(value)
+    if hasattr(value, "isoformat"):
+        return value.isoformat()
+    return str(value)
+
+
+def to_json(result: Any) -> Any:
+    """Turn any quadkit result into plain JSON-able Python: numbers, lists, strings, dicts.
+
+    A Dataset becomes a dict of its data variables and coordinates (arrays become nested
+    lists); lazy values are computed. NaN and infinities become ``None`` (valid JSON ``null``);
+    complex numbers become ``{"real": ..., "imag": ...}``.
+
+    Examples
+    --------
+    >>> import json, numpy as np, xarray as xr, quadkit
+    >>> ds = xr.Dataset({"power_dbfs": ((), np.float32(-3.0)), "tone_hz": ("tone", [1.0, 2.0])})
+    >>> json.dumps(quadkit.to_json(ds), sort_keys=True)
+    '{"power_dbfs": -3.0, "tone_hz": [1.0, 2.0]}'
+    """
+    if isinstance(result, xr.Dataset):
+        result = result.compute()
+        out: dict[str, Any] = {}
+        for name, var in result.data_vars.items():
+            out[str(name)] = _plain(var)
+        for name, coord in result.coords.items():
+            if str(name) not in out:
+                out[str(name)] = _plain(coord)
+        return out
+    if isinstance(result, xr.DataArray):
+        return _plain(result.compute())
+    return _plain(result)
