@@ -245,6 +245,22 @@ def full_scale(cap: xr.DataArray) -> float:
     return float(cap.attrs.get("full_scale", 1.0))
 
 
+def validate_light(cap: xr.DataArray) -> xr.DataArray:
+    """The checks of :func:`validate` that do not read the samples (dims, rate, dtype)."""
+    if not isinstance(cap, xr.DataArray):
+        raise CaptureError(
+            f"expected a capture (xarray.DataArray from quadkit.capture), got {type(cap).__name__}"
+        )
+    if tuple(cap.dims) not in _ALLOWED_DIMS:
+        raise CaptureError(
+            f"capture has dims {tuple(cap.dims)}, expected ('time',) or ('channel', 'time')"
+        )
+    _check_rate(cap.attrs.get("sample_rate"), source="capture")
+    if cap.dtype.kind not in "cf":
+        raise CaptureError(f"capture samples have dtype {cap.dtype}, expected complex or real float")
+    return cap
+
+
 def validate(cap: xr.DataArray) -> xr.DataArray:
     """Check that ``cap`` is a well-formed capture and return it unchanged.
 

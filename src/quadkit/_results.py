@@ -74,7 +74,11 @@ def to_json(result: Any) -> Any:
     """Turn any quadkit result into plain JSON-able Python: numbers, lists, strings, dicts.
 
     A Dataset becomes a dict of its data variables and coordinates (arrays become nested
-    lists); lazy values are computed. NaN and infinities become ``None`` (valid JSON ``null``);
+    lists); lazy values are computed. A result may ask for a friendlier layout through two
+    attrs: ``json_records`` maps an output key to a dimension (``{"tones": "tone"}``: the
+    variables along ``tone`` become a list of records, their ``tone_`` prefix dropped), and
+    ``json_groups`` maps an output key to a name prefix (``{"modulation": "modulation_"}``:
+    those scalars become one nested dict). Attrs named in ``json_attrs`` are copied as they are. NaN and infinities become ``None`` (valid JSON ``null``);
     complex numbers become ``{"real": ..., "imag": ...}``.
 
     Examples
@@ -85,14 +89,41 @@ def to_json(result: Any) -> Any:
     '{"power_dbfs": -3.0, "tone_hz": [1.0, 2.0]}'
     """
     if isinstance(result, xr.Dataset):
-        result = result.compute()
-        out: dict[str, Any] = {}
-        for name, var in result.data_vars.items():
-            out[str(name)] = _plain(var)
-        for name, coord in result.coords.items():
-            if str(name) not in out:
-                out[str(name)] = _plain(coord)
-        return out
+        return _dataset_json(result.compute())
     if isinstance(result, xr.DataArray):
         return _plain(result.compute())
     return _plain(result)
+
+
+def _dataset_json(ds: xr.Dataset) -> dict[str, Any]:
+    records = dict(ds.attrs.get("json_records", {}) or {})
+    groups = dict(ds.attrs.get("json_groups", {}) or {})
+    taken: set[str] = set()
+    out: dict[str, Any] = {}
+    for key, dim in records.items():
+        names = [str(n) for n, v in ds.data_vars.items() if dim in v.dims]
+        taken.update(names)
+        size = ds.sizes.get(dim, 0)
+        prefix = f"{dim}_"
+        rows = []
+        for i in range(size):
+            row = ds[names].isel({dim: i})
+            rows.append({(n[len(prefix):] if n.startswith(prefix) else n): _plain(row[n])
+                         for n in names})
+        out[key] = rows
+    for key, prefix in groups.items():
+        names = [str(n) for n in ds.data_vars if str(n).startswith(prefix)]
+        taken.update(names)
+        out[key] = {n[len(prefix):]: _plain(ds[n]) for n in names}
+    for name, var in ds.data_vars.items():
+        if str(name) not in taken:
+            out[str(name)] = _plain(var)
+    skip = set(records.values())
+    for name, coord in ds.coords.items():
+        if str(name) not in out and str(name) not in skip and not (
+            any(d in skip for d in coord.dims)
+        ):
+            out[str(name)] = _plain(coord)
+    for name in ds.attrs.get("json_attrs", ()) or ():
+        out[str(name)] = _plain(ds.attrs.get(name))
+    return out
