@@ -1,0 +1,169 @@
+"""SigMF sample formats: the datatype grammar and the conversion kernels.
+
+The grammar (SigMF core specification, ``core:datatype``)::
+
+    (r|c)(f32|f64|i32|i16|u32|u16)(_le|_be)   or   (r|c)(i8|u8)
+
+``c`` is complex (I then Q, interleaved), ``r`` real; ``f`` IEEE float, ``i`` two's-complement
+integer, ``u`` unsigned integer; ``_le``/``_be`` the byte order.
+
+Scaling (the same as the SigMF reference library's "autoscale"):
+
+- signed b-bit integers: ``x / 2**(b-1)`` (ci16: divide by 32768), so full scale is 1.0;
+- unsigned b-bit integers: subtract the mid-code ``2**(b-1)`` first, then divide by it
+  (cu8: ``(x - 128) / 128``);
+- floats are taken as they are.
+
+Integers decode to complex64 (complex) or float32 (real): 8- and 16-bit values are exact in
+float32; 32-bit values are rounded once to float32's 24-bit mantissa. ``cf64``/``rf64`` decode
+to complex128/float64 (kept, not narrowed). Encoding is the inverse: multiply by ``2**(b-1)``,
+round half to even, add the mid-code for unsigned types and clip to the integer range (so
++1.0 in ci16 becomes 32767).
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+
+import numpy as np
+
+from .._errors import CaptureError
+
+__all__ = ["SampleFormat", "parse_datatype", "KNOWN_DATATYPES", "decode", "encode"]
+
+_GRAMMAR = re.compile(r"^(?P<cr>[rc])(?:(?P<wide>f32|f64|i32|i16|u32|u16)_(?P<end>le|be)|(?P<byte>[iu]8))$")
+
+
+def _known() -> tuple[str, ...]:
+    names = []
+    for cr in "cr":
+        for base in ("f32", "f64", "i32", "i16", "u32", "u16"):
+            names += [f"{cr}{base}_le", f"{cr}{base}_be"]
+        names += [f"{cr}i8", f"{cr}u8"]
+    return tuple(names)
+
+
+#: Every datatype name the grammar allows (28 of them).
+KNOWN_DATATYPES: tuple[str, ...] = _known()
+
+
+@dataclass(frozen=True)
+class SampleFormat:
+    """A parsed SigMF datatype."""
+
+    name: str
+    is_complex: bool
+    kind: str  # "f", "i" or "u"
+    bits: int
+    byteorder: str  # "<", ">" or "|"
+
+    @property
+    def component(self) -> np.dtype:
+        """numpy dtype of one component (I, Q or the real value) as stored in the file."""
+        return np.dtype(f"{self.byteorder}{self.kind}{self.bits // 8}")
+
+    @property
+    def components(self) -> int:
+        return 2 if self.is_complex else 1
+
+    @property
+    def sample_bytes(self) -> int:
+        """Bytes per sample of one channel (ci16_le: 4, cf32_le: 8, cu8: 2, ri16_be: 2)."""
+        return self.components * self.bits // 8
+
+    @property
+    def output(self) -> np.dtype:
+        """numpy dtype of the decoded samples."""
+        wide = self.kind == "f" and self.bits == 64
+        if self.is_complex:
+            return np.dtype(np.complex128 if wide else np.complex64)
+        return np.dtype(np.float64 if wide else np.float32)
+
+    @property
+    def scale(self) -> float:
+        return 1.0 if self.kind == "f" else float(2 ** (self.bits - 1))
+
+    @property
+    def midcode(self) -> float:
+        return float(2 ** (self.bits - 1)) if self.kind == "u" else 0.0
+
+
+def parse_datatype(name: object, *, source: str = "datatype") -> SampleFormat:
+    """Parse a SigMF datatype name, raising :class:`CaptureError` listing the known ones."""
+    if not isinstance(name, str):
+        raise CaptureError(
+            f"{source}: datatype must be a string such as 'ci16_le', got {name!r}"
+        )
+    m = _GRAMMAR.match(name)
+    if not m:
+        raise CaptureError(
+            f"{source}: unknown datatype {name!r}; known datatypes: {', '.join(KNOWN_DATATYPES)}"
+        )
+    base = m.group("wide") or m.group("byte")
+    end = m.group("end")
+    order = {"le": "<", "be": ">", None: "|"}[end]
+    return SampleFormat(name, m.group("cr") == "c", base[0], int(base[1:]), order)
+
+
+def decode(raw: np.ndarray, fmt: SampleFormat) -> np.ndarray:
+    """Turn stored components (any shape, last axis interleaved I/Q) into samples.
+
+    ``raw`` has dtype ``fmt.component``; the result has ``fmt.output`` and, for complex
+    formats, half the length along the last axis. One pass for 8/16-bit integers: the
+    multiply ufunc reads the integers and writes float32 directly.
+    """
+    if fmt.kind == "f":
+        comp = raw.astype(np.float64 if fmt.bits == 64 else np.float32, copy=False)
+        if not comp.flags.c_contiguous:
+            comp = np.ascontiguousarray(comp)
+    elif fmt.bits <= 16:
+        comp = np.empty(raw.shape, np.float32)
+        if fmt.kind == "u":
+            # (x - mid)/mid = x/mid - 1, both steps exact in float32 for b <= 16
+            np.multiply(raw, np.float32(1.0 / fmt.scale), out=comp, dtype=np.float32)
+            np.subtract(comp, np.float32(1.0), out=comp)
+        else:
+            np.multiply(raw, np.float32(1.0 / fmt.scale), out=comp, dtype=np.float32)
+    else:
+        # 32-bit integers: scale in float64 (exact), then round once to float32.
+        wide = raw.astype(np.float64)
+        if fmt.kind == "u":
+            wide -= fmt.midcode
+        wide *= 1.0 / fmt.scale
+        comp = wide.astype(np.float32)
+    if fmt.is_complex:
+        return comp.view(np.complex128 if comp.dtype == np.float64 else np.complex64)
+    return comp
+
+
+def encode(samples: np.ndarray, fmt: SampleFormat) -> np.ndarray:
+    """Inverse of :func:`decode`: samples (last axis time) to stored components.
+
+    Complex samples are interleaved I, Q along the last axis. Integer formats round half to
+    even and clip to the integer range; float formats are cast (cf32 from complex128
+    rounds to float32).
+    """
+    samples = np.asarray(samples)
+    if fmt.is_complex:
+        if samples.dtype.kind != "c":
+            samples = samples.astype(np.complex64)
+        width = np.float64 if samples.dtype == np.complex128 else np.float32
+        samples = np.ascontiguousarray(samples)
+        comp = samples.view(width)
+    else:
+        if samples.dtype.kind == "c":
+            raise CaptureError(
+                f"encode: datatype {fmt.name!r} is real but the samples are complex; use a "
+                f"complex datatype such as 'c{fmt.name[1:]}'"
+            )
+        comp = samples
+    if fmt.kind == "f":
+        return comp.astype(fmt.component)
+    info = np.iinfo(fmt.component)
+    work = comp.astype(np.float64) * fmt.scale
+    if fmt.midcode:
+        work += fmt.midcode
+    np.rint(work, out=work)
+    np.clip(work, info.min, info.max, out=work)
+    return work.astype(fmt.component)
