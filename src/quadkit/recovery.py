@@ -1,0 +1,848 @@
+"""Amplitude, phase and frequency of tones, at the accuracy the data allows.
+
+Functions
+---------
+measure_tone
+    Frequency, amplitude and phase (at the first sample) of the strongest tone, or of the tone
+    near a given frequency; residual, SNR; per channel with phases relative to channel 0.
+sine_fit
+    IEEE Std 1241 three-parameter (frequency known) or four-parameter (frequency estimated)
+    sine fit with residual rms, SINAD and ENOB.
+iq_components
+    In-phase and quadrature amplitudes I = A cos(phi), Q = A sin(phi) at a frequency.
+harmonics
+    Amplitude and phase of the first n harmonics of a fundamental (dimension ``harmonic``).
+analytic, envelope, instantaneous_phase, instantaneous_frequency
+    Streaming operations: analytic signal of a real capture, its magnitude, phase and
+    frequency.
+
+Conventions
+-----------
+A real capture holding ``A cos(2 pi f t + phi)`` gives amplitude ``A`` and phase ``phi``; a
+complex capture holding ``A exp(j (2 pi f t + phi))`` gives the same. ``t`` counts from the
+capture's first sample (``t = 0`` there, also for a sliced capture). Amplitudes are in units
+of full scale ("FS", the ``full_scale`` attr); a complex tone of amplitude 1 FS is 0 dBFS and a
+real one is -3.01 dBFS. Frequencies are absolute (``center_frequency`` + offset); results
+carry the baseband offset as ``offset_hz`` too. Phases are quadrant-correct, in radians unless
+the name ends in ``_deg``.
+
+How the estimates are made
+--------------------------
+Every measurement is a short sequence of passes over the capture, each a sum over time blocks
+(a lazy capture is reduced chunk by chunk, never loaded whole; the result is lazy too and
+nothing is computed until you ask):
+
+1. an averaged (Welch-like, periodic Hann) spectrum of segments of ``L1`` samples finds the
+   strongest line to a fraction of ``fs / L1``;
+2. the capture is mixed down by that coarse frequency and summed over segments of
+   ``L2 = L1 / 4`` samples; the segment sums of a tone form an exact tone of its own, whose
+   zero-padded FFT peak gives the frequency to a small fraction of ``fs / N``;
+3. Newton steps on the periodogram ``|sum x[n] exp(-j w n)|^2`` of the whole capture (complex
+   captures) or Gauss-Newton steps of the IEEE Std 1241 four-parameter fit (real captures)
+   polish it to the maximum-likelihood estimate, whose error reaches the Cramer-Rao bound
+   above threshold (Rife & Boorstyn 1974);
+4. a last pass fits amplitude and phase by least squares at the final frequency and gives the
+   residual.
+
+The sample index ``n`` is centred (``n - (N - 1) / 2``) inside the sums, which decorrelates the
+phase from the frequency error; the phase is then carried back to the first sample.
+"""
+
+from __future__ import annotations
+
+import math
+import operator
+from typing import Any, Literal
+
+import numpy as np
+import xarray as xr
+
+from . import _capture
+from ._checks import check_finite, check_option, check_positive_int
+from ._errors import MeasurementError
+from ._nco import phase_cycles
+from ._results import quantity, result
+
+__all__ = [
+    "measure_tone",
+    "sine_fit",
+    "iq_components",
+    "harmonics",
+    "analytic",
+    "envelope",
+    "instantaneous_phase",
+    "instantaneous_frequency",
+]
+
+_ACCESSOR = (
+    "measure_tone",
+    "sine_fit",
+    "iq_components",
+    "harmonics",
+    "analytic",
+    "envelope",
+    "instantaneous_phase",
+    "instantaneous_frequency",
+)
+
+#: Samples per inner block of every pass (a multiple of every Welch segment length used).
+_BLOCK = 1 << 16
+#: Largest number of segment sums kept by the fine search (bounds its memory).
+_MAX_SEGMENTS = 1 << 15
+#: Newton / Gauss-Newton iterations after the fine search (each one pass over the data).
+_ITERATIONS = 2
+#: False-alarm probability of the "is there a tone at all" test.
+_PFA = 1e-4
+_MIN_SAMPLES_SEARCH = 16
+_MIN_SAMPLES_FIXED = 4
+#: Hilbert FIR of the streaming analytic signal: half length and Kaiser beta.
+_HILBERT_HALF = 256
+_HILBERT_BETA = 8.6
+
+
+# --------------------------------------------------------------------------------------------
+# Chunked reduction engine: one pass = sum over time blocks of kernel(block, offset, state)
+# --------------------------------------------------------------------------------------------
+
+def _data2d(cap: xr.DataArray) -> tuple[Any, bool]:
+    """The samples as (channel, time), numpy or dask, and whether they are lazy."""
+    if not isinstance(cap, xr.DataArray) or "time" not in cap.dims:
+        raise ValueError("recovery: expected a capture (xarray.DataArray with a 'time' dim)")
+    if tuple(cap.dims) not in (("time",), ("channel", "time")):
+        raise ValueError(f"recovery: capture has dims {tuple(cap.dims)}, expected ('time',) or "
+                         "('channel', 'time')")
+    data = cap.data
+    lazy = _capture.is_lazy(cap)
+    if data.ndim == 1:
+        data = data[None, :]
+    if lazy and len(data.chunks[0]) > 1:
+        data = data.rechunk({0: -1})
+    return data, lazy
+
+
+def _run_blocks(x: np.ndarray, offset: int, kernel: Any, params: tuple) -> np.ndarray:
+    x = np.asarray(x)
+    state = kernel.prepare(x.shape[0], *params)
+    acc = None
+    for s in range(0, x.shape[-1], _BLOCK):
+        part = kernel.apply(x[:, s:s + _BLOCK], offset + s, state)
+        acc = part if acc is None else acc + part
+    if acc is None:
+        acc = kernel.apply(x[:, :0], offset, state)
+    return acc
+
+
+def _tree_sum(parts: list) -> Any:
+    import dask
+
+    add = dask.delayed(operator.add, pure=True)
+    while len(parts) > 1:
+        parts = [add(parts[i], parts[i + 1]) if i + 1 < len(parts) else parts[i]
+                 for i in range(0, len(parts), 2)]
+    return parts[0]
+
+
+def _pass(data: Any, lazy: bool, kernel: Any, *params: Any) -> Any:
+    """Sum ``kernel`` over all time blocks; numpy result, or a dask Delayed for lazy data."""
+    if not lazy:
+        return _run_blocks(data, 0, kernel, params)
+    import dask
+
+    blocks = data.to_delayed()[0]
+    offsets = np.concatenate([[0], np.cumsum(data.chunks[1])[:-1]]).astype(int)
+    run = dask.delayed(_run_blocks, pure=True)
+    return _tree_sum([run(b, int(o), kernel, params) for b, o in zip(blocks, offsets)])
+
+
+def _step(lazy: bool, func: Any, *args: Any) -> Any:
+    if not lazy:
+        return func(*args)
+    import dask
+
+    return dask.delayed(func, pure=True)(*args)
+
+
+def _unit_phasor(ratio: np.ndarray, index: float) -> np.ndarray:
+    """exp(j 2 pi ratio index) per channel, exact also for large (half-)integer ``index``."""
+    twice = int(round(2 * index))
+    cyc = np.array([phase_cycles(r / 2.0, twice, 1)[0] for r in np.atleast_1d(ratio)])
+    return np.exp(2j * np.pi * cyc)
+
+
+def _base(ratio: np.ndarray, count: int) -> np.ndarray:
+    """exp(j 2 pi ratio k), k = 0 .. count-1, per channel: shape (channel, count)."""
+    return np.exp(2j * np.pi * np.stack([phase_cycles(r, 0, count) for r in ratio]))
+
+
+class _Welch:
+    """Averaged |FFT|^2 of Hann-windowed segments of length L aligned to the first sample."""
+
+    @staticmethod
+    def prepare(nchan: int, length: int) -> tuple:
+        win = 0.5 - 0.5 * np.cos(2 * np.pi * np.arange(length) / length)  # periodic Hann
+        return length, win
+
+    @staticmethod
+    def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
+        length, win = state
+        nseg = x.shape[-1] // length
+        if nseg == 0:
+            return np.zeros((x.shape[0], length))
+        seg = x[:, :nseg * length].reshape(x.shape[0], nseg, length) * win
+        return (np.abs(np.fft.fft(seg, axis=-1)) ** 2).sum(axis=1)
+
+
+class _Segments:
+    """Sums of x[n] exp(-j w (n - c)) over segments k = n // L2 < K (full segments only)."""
+
+    @staticmethod
+    def prepare(nchan: int, ratio: np.ndarray, seg: int, nseg: int, centre: float) -> tuple:
+        return ratio, seg, nseg, centre, np.conj(_base(ratio, _BLOCK))
+
+    @staticmethod
+    def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
+        ratio, seg, nseg, centre, cbase = state
+        out = np.zeros((x.shape[0], nseg), np.complex128)
+        b = x.shape[-1]
+        stop = min(b, nseg * seg - offset)
+        if stop <= 0:
+            return out
+        p = x[:, :stop] * cbase[:, :stop] * np.conj(_unit_phasor(ratio, offset - centre))[:, None]
+        first = offset // seg
+        starts = np.arange(first * seg, offset + stop, seg) - offset
+        starts[0] = 0
+        sums = np.add.reduceat(p, starts, axis=-1)
+        out[:, first:first + sums.shape[-1]] = sums
+        return out
+
+
+class _Moments:
+    """S_i = sum m^i x[n] exp(-j w m), m = n - c, i = 0, 1, 2, and the energy sum |x|^2."""
+
+    @staticmethod
+    def prepare(nchan: int, ratio: np.ndarray, centre: float) -> tuple:
+        k = np.arange(_BLOCK, dtype=np.float64)
+        kmat = np.stack([np.ones(_BLOCK), k, k * k], axis=1)
+        return ratio, centre, np.conj(_base(ratio, _BLOCK)), kmat
+
+    @staticmethod
+    def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
+        ratio, centre, cbase, kmat = state
+        nchan, b = x.shape
+        out = np.zeros((nchan, 4), np.complex128)
+        if b == 0:
+            return out
+        xc = x.astype(np.complex128, copy=False)
+        p = xc * cbase[:, :b] * np.conj(_unit_phasor(ratio, offset - centre))[:, None]
+        loc = np.concatenate([p.real, p.imag]) @ kmat[:b]  # (2C, 3): sums of k^i p
+        s = loc[:nchan] + 1j * loc[nchan:]
+        d = offset - centre  # m = d + k
+        out[:, 0] = s[:, 0]
+        out[:, 1] = d * s[:, 0] + s[:, 1]
+        out[:, 2] = d * d * s[:, 0] + 2 * d * s[:, 1] + s[:, 2]
+        out[:, 3] = np.sum(xc.real ** 2 + xc.imag ** 2, axis=-1)
+        return out
+
+
+class _RealGram:
+    """Augmented Gram matrix of [cos wm, sin wm, 1, u cos wm, u sin wm, x], u = m / h."""
+
+    @staticmethod
+    def prepare(nchan: int, ratio: np.ndarray, centre: float, scale: float) -> tuple:
+        return ratio, centre, scale, _base(ratio, _BLOCK)
+
+    @staticmethod
+    def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
+        ratio, centre, scale, base = state
+        nchan, b = x.shape
+        out = np.zeros((nchan, 6, 6))
+        if b == 0:
+            return out
+        q = base[:, :b] * _unit_phasor(ratio, offset - centre)[:, None]
+        u = (offset - centre + np.arange(b)) / scale
+        for ch in range(nchan):
+            v = np.empty((b, 6))
+            v[:, 0] = q[ch].real
+            v[:, 1] = q[ch].imag
+            v[:, 2] = 1.0
+            v[:, 3] = u * v[:, 0]
+            v[:, 4] = u * v[:, 1]
+            v[:, 5] = x[ch]
+            out[ch] = v.T @ v
+        return out
+
+
+class _Harmonics:
+    """Augmented Gram of the harmonic regressors (real: cos/sin per harmonic + 1; complex:
+    exp per harmonic + 1) and the samples; complex Hermitian for complex captures."""
+
+    @staticmethod
+    def prepare(nchan: int, ratios: np.ndarray, real: bool) -> tuple:
+        return ratios, real
+
+    @staticmethod
+    def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
+        ratios, real = state
+        nchan, b = x.shape
+        nh = len(ratios)
+        osc = np.exp(2j * np.pi * np.stack([phase_cycles(r, offset, b) for r in ratios]))
+        if real:
+            cols = [osc.real, osc.imag, np.ones((1, b))]
+            v = np.concatenate(cols)  # (2 nh + 1, b)
+            out = np.zeros((nchan, 2 * nh + 2, 2 * nh + 2))
+        else:
+            v = np.concatenate([osc, np.ones((1, b))])
+            out = np.zeros((nchan, nh + 2, nh + 2), np.complex128)
+        for ch in range(nchan):
+            w = np.concatenate([v, x[ch][None, :].astype(v.dtype)])
+            out[ch] = np.conj(w) @ w.T
+        return out
+
+
+# --------------------------------------------------------------------------------------------
+# Estimation steps (small numpy computations between passes)
+# --------------------------------------------------------------------------------------------
+
+def _sizes(n: int) -> tuple[int, int, int]:
+    """Welch segment L1, fine segment L2 = L1 / 4, number of full fine segments K."""
+    l2 = 1 << max(2, math.ceil(math.log2(max(1.0, n / _MAX_SEGMENTS))))
+    l2 = max(l2, min(1024, 1 << int(math.log2(n // 4))))
+    l1 = 4 * l2
+    if l1 > n:
+        l1 = 1 << int(math.log2(n))
+        l2 = max(1, l1 // 4)
+    return l1, l2, n // l2
+
+
+def _coarse(spec: np.ndarray, real: bool, hint: np.ndarray | None, window_bins: float,
+            func: str) -> np.ndarray:
+    """Peak of the averaged spectrum (per channel), log-parabolic interpolation; cycles/sample."""
+    nchan, length = spec.shape
+    freqs = np.fft.fftfreq(length)
+    out = np.empty(nchan)
+    for ch in range(nchan):
+        p = spec[ch].copy()
+        allowed = np.ones(length, bool)
+        if real:
+            allowed &= (freqs >= 0) | (freqs == -0.5)
+            allowed &= np.abs(freqs) * length > 2  # DC and its Hann leakage are no tone
+            allowed &= np.abs(freqs) * length < length / 2 - 1 if length > 8 else allowed
+        if hint is not None:
+            dist = np.abs((freqs - hint[ch] + 0.5) % 1.0 - 0.5) * length
+            allowed &= dist <= window_bins
+        if not allowed.any():
+            raise MeasurementError(
+                f"{func}: no spectral bin left to search (capture of {length} samples per "
+                "segment); give more samples or a frequency inside the band")
+        p[~allowed] = -1.0
+        k = int(np.argmax(p))
+        a, b0, c = (max(spec[ch][(k + d) % length], 1e-300) for d in (-1, 0, 1))
+        la, lb, lc = np.log(a), np.log(b0), np.log(c)
+        den = la - 2 * lb + lc
+        delta = 0.5 * (la - lc) / den if den < 0 else 0.0
+        out[ch] = freqs[k] + float(np.clip(delta, -0.5, 0.5)) / length
+    return out
+
+
+def _fine(segsums: np.ndarray, coarse: np.ndarray, seg: int) -> np.ndarray:
+    """Frequency of the tone formed by the segment sums (zero-padded FFT peak + parabola)."""
+    nchan, k = segsums.shape
+    nfft = 1 << max(6, math.ceil(math.log2(8 * k)))
+    spec = np.abs(np.fft.fft(segsums, nfft, axis=-1)) ** 2
+    out = np.empty(nchan)
+    for ch in range(nchan):
+        i = int(np.argmax(spec[ch]))
+        a, b0, c = (spec[ch][(i + d) % nfft] for d in (-1, 0, 1))
+        den = a - 2 * b0 + c
+        delta = 0.5 * (a - c) / den if den < 0 else 0.0
+        f = (((i + delta) / nfft + 0.5) % 1.0) - 0.5  # cycles per segment
+        out[ch] = coarse[ch] + f / seg
+    return out
+
+
+def _newton(mom: np.ndarray, ratio: np.ndarray, n: int) -> np.ndarray:
+    """One Newton step towards the periodogram maximum (ratio in cycles/sample)."""
+    s0, s1, s2 = mom[:, 0], mom[:, 1], mom[:, 2]
+    d1 = 2 * np.imag(np.conj(s0) * s1)
+    d2 = 2 * (np.abs(s1) ** 2 - np.real(np.conj(s0) * s2))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        step = np.where(d2 < 0, -d1 / d2, np.sign(d1) * np.pi / n)
+    step = np.clip(np.nan_to_num(step), -np.pi / n, np.pi / n)
+    return ratio + step / (2 * np.pi)
+
+
+def _solve(g: np.ndarray, r: np.ndarray, what: str) -> np.ndarray:
+    try:
+        return np.linalg.solve(g, r)
+    except np.linalg.LinAlgError:
+        raise MeasurementError(f"{what}: the fit is singular (the regressors are not "
+                               "independent over this capture); give more samples") from None
+
+
+def _gauss_newton(gram: np.ndarray, ratio: np.ndarray, scale: float) -> np.ndarray:
+    """One IEEE Std 1241 four-parameter step from the augmented Gram at ``ratio``."""
+    out = ratio.copy()
+    for ch in range(gram.shape[0]):
+        g = gram[ch]
+        a, b, _ = _solve(g[:3, :3], g[:3, 5], "sine_fit")
+        t = np.zeros((5, 4))
+        t[0, 0] = t[1, 1] = t[2, 2] = 1.0
+        t[3, 3] = b   # d/dw of a cos(wm) + b sin(wm) = m (b cos - a sin) = h u (b cos - a sin)
+        t[4, 3] = -a
+        jj = t.T @ g[:5, :5] @ t
+        jr = t.T @ g[:5, 5]
+        theta = _solve(jj, jr, "sine_fit")
+        dw = theta[3] / scale
+        dw = float(np.clip(dw, -np.pi / scale, np.pi / scale))
+        out[ch] = ratio[ch] + dw / (2 * np.pi)
+    return out
+
+
+def _finish_complex(mom: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs: float,
+                    check: bool, func: str) -> dict:
+    y = mom[:, 0]
+    energy = mom[:, 3].real
+    amp = np.abs(y) / n
+    resid = np.maximum(energy - np.abs(y) ** 2 / n, 0.0)
+    noise = resid / max(n - 2, 1)
+    phase_c = np.angle(y)
+    phase0 = phase_c - 2 * np.pi * ((ratio * centre + 0.5) % 1.0 - 0.5)
+    out = _common(amp, phase_c, phase0, ratio, resid, noise, amp ** 2, n, fs, check,
+                  n * amp ** 2, func)
+    return out
+
+
+def _finish_real(gram: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs: float,
+                 check: bool, func: str) -> dict:
+    nchan = gram.shape[0]
+    amp = np.empty(nchan)
+    phase_c = np.empty(nchan)
+    dc = np.empty(nchan)
+    resid = np.empty(nchan)
+    for ch in range(nchan):
+        g = gram[ch]
+        if abs(ratio[ch]) < 1e-12 or abs(abs(ratio[ch]) - 0.5) < 1e-12:
+            raise MeasurementError(
+                f"{func}: frequency {ratio[ch] * fs:g} Hz offset is at DC or Nyquist, where a "
+                "real tone has no phase to measure; choose a frequency inside (0, fs/2)")
+        a, b, c = _solve(g[:3, :3], g[:3, 5], func)
+        amp[ch] = math.hypot(a, b)
+        phase_c[ch] = math.atan2(-b, a)  # a cos + b sin = A cos(wm + psi): a = A cos, b = -A sin
+        dc[ch] = c
+        theta = np.array([a, b, c])
+        resid[ch] = max(g[5, 5] - 2 * theta @ g[:3, 5] + theta @ g[:3, :3] @ theta, 0.0)
+    noise = resid / max(n - 4, 1)
+    phase0 = phase_c - 2 * np.pi * ((ratio * centre + 0.5) % 1.0 - 0.5)
+    out = _common(amp, phase_c, phase0, ratio, resid, noise, amp ** 2 / 2, n, fs, check,
+                  n * amp ** 2 / 2, func)
+    out["dc"] = dc
+    return out
+
+
+def _common(amp, phase_c, phase0, ratio, resid, noise, power, n, fs, check, integrated,
+            func) -> dict:
+    if check:
+        need = math.log(n) + math.log(1 / _PFA)
+        with np.errstate(divide="ignore"):
+            got = integrated / np.maximum(noise, 1e-300)
+        for ch in np.flatnonzero(~(got >= need)):
+            raise MeasurementError(
+                f"{func}: no tone above the noise (channel {ch}): the strongest line, at "
+                f"{ratio[ch] * fs:.6g} Hz offset, has an integrated SNR of "
+                f"{10 * math.log10(max(got[ch], 1e-30)):.1f} dB over {n} samples; at least "
+                f"{10 * math.log10(need):.1f} dB is needed (false-alarm probability {_PFA:g})")
+    if not np.all(np.isfinite(amp)) or not np.all(np.isfinite(phase0)):
+        raise MeasurementError(f"{func}: the fit gave a non-finite result")
+    wrapped0 = (phase0 + np.pi) % (2 * np.pi) - np.pi
+    with np.errstate(divide="ignore"):
+        snr = 10 * np.log10(np.where(noise > 0, power / np.maximum(noise, 1e-300), np.inf))
+    return {
+        "ratio": ratio, "amplitude": amp, "phase_centre": phase_c, "phase0": wrapped0,
+        "residual_energy": resid, "noise_power": noise, "snr_db": np.minimum(snr, 400.0),
+    }
+
+
+def _search(data: Any, lazy: bool, n: int, real: bool, hint: np.ndarray | None,
+            func: str) -> Any:
+    """Coarse (Welch) and fine (segment) stages: ratio estimate per channel (maybe Delayed)."""
+    l1, l2, k = _sizes(n)
+    centre = (n - 1) / 2.0
+    welch_data = data
+    if lazy:
+        sizes = data.chunks[1]
+        aligned = max(l1, int(round(max(sizes) / l1)) * l1)
+        welch_data = data.rechunk({1: aligned})
+    spec = _pass(welch_data, lazy, _Welch, l1)
+    coarse = _step(lazy, _coarse, spec, real, hint, 3.0, func)
+    segs = _pass(data, lazy, _Segments, coarse, l2, k, centre)
+    return _step(lazy, _fine, segs, coarse, l2)
+
+
+def _refine(data: Any, lazy: bool, ratio: Any, n: int, real: bool) -> Any:
+    centre = (n - 1) / 2.0
+    scale = max(centre, 1.0)
+    for _ in range(_ITERATIONS):
+        if real:
+            gram = _pass(data, lazy, _RealGram, ratio, centre, scale)
+            ratio = _step(lazy, _gauss_newton, gram, ratio, scale)
+        else:
+            mom = _pass(data, lazy, _Moments, ratio, centre)
+            ratio = _step(lazy, _newton, mom, ratio, n)
+    return ratio
+
+
+def _estimate(cap: xr.DataArray, frequency_hz: float | None, refine: bool, func: str) -> tuple:
+    """Run the passes; returns (dict of per-channel arrays or a Delayed of it, lazy, meta)."""
+    data, lazy = _data2d(cap)
+    fs = _capture.sample_rate(cap)
+    fc = float(cap.attrs.get("center_frequency", 0.0))
+    real = not _capture.is_complex(cap)
+    nchan, n = data.shape
+    need = _MIN_SAMPLES_SEARCH if (frequency_hz is None or refine) else _MIN_SAMPLES_FIXED
+    if n < need:
+        raise MeasurementError(
+            f"{func}: the capture has {n} samples; at least {need} are needed "
+            f"({'to search for a frequency' if need == _MIN_SAMPLES_SEARCH else 'for the fit'})")
+    hint = None
+    if frequency_hz is not None:
+        offset = _offset_of(func, frequency_hz, fs, fc, real)
+        hint = np.full(nchan, offset / fs)
+    centre = (n - 1) / 2.0
+    if hint is not None and not refine:
+        ratio = hint
+    else:
+        ratio = _search(data, lazy, n, real, hint, func)
+        ratio = _refine(data, lazy, ratio, n, real)
+    check = frequency_hz is None
+    if real:
+        gram = _pass(data, lazy, _RealGram, ratio, centre, max(centre, 1.0))
+        res = _step(lazy, _finish_real, gram, ratio, n, centre, fs, check, func)
+    else:
+        mom = _pass(data, lazy, _Moments, ratio, centre)
+        res = _step(lazy, _finish_complex, mom, ratio, n, centre, fs, check, func)
+    meta = {"fs": fs, "fc": fc, "real": real, "n": n, "nchan": nchan,
+            "multi": cap.ndim == 2, "lazy": lazy}
+    return res, meta
+
+
+def _offset_of(func: str, frequency_hz: Any, fs: float, fc: float, real: bool) -> float:
+    f = check_finite(func, "frequency_hz", frequency_hz)
+    off = f - fc
+    if real:
+        if not 0 < off < fs / 2:
+            raise ValueError(
+                f"{func}: frequency_hz={f:g} is {off:g} Hz from center_frequency={fc:g}; a real "
+                f"capture at sample_rate={fs:g} holds tones strictly between 0 and the Nyquist "
+                f"frequency {fs / 2:g} Hz")
+    elif not -fs / 2 <= off < fs / 2:
+        raise ValueError(
+            f"{func}: frequency_hz={f:g} is {off:g} Hz from center_frequency={fc:g}, outside "
+            f"the band [-{fs / 2:g}, {fs / 2:g}) Hz of sample_rate={fs:g}")
+    return off
+
+
+def _field(res: Any, key: str, meta: dict, dtype: Any = np.float64) -> Any:
+    """One per-channel result array, lazy (dask) when the capture is."""
+    if not meta["lazy"]:
+        return np.asarray(res[key])
+    import dask
+    import dask.array as da
+
+    item = dask.delayed(operator.getitem, pure=True)(res, key)
+    return da.from_delayed(item, shape=(meta["nchan"],), dtype=dtype)
+
+
+def _var(value: Any, meta: dict, units: str, long_name: str) -> xr.DataArray:
+    if meta["multi"]:
+        return quantity(value, units, long_name, dims=("channel",))
+    return quantity(value[0], units, long_name)
+
+
+def _coords(cap: xr.DataArray, meta: dict) -> dict:
+    return {"channel": cap["channel"].values} if meta["multi"] else {}
+
+
+def _tone_vars(res: Any, meta: dict, with_relative: bool) -> dict:
+    fs, fc = meta["fs"], meta["fc"]
+    ratio = _field(res, "ratio", meta)
+    amp = _field(res, "amplitude", meta)
+    ph0 = _field(res, "phase0", meta)
+    phc = _field(res, "phase_centre", meta)
+    noise = _field(res, "noise_power", meta)
+    resid = _field(res, "residual_energy", meta)
+    power = amp ** 2 / (2 if meta["real"] else 1)
+    out = {
+        "frequency_hz": _var(fc + ratio * fs, meta, "Hz", "tone frequency (absolute)"),
+        "offset_hz": _var(ratio * fs, meta, "Hz", "tone frequency offset from the center "
+                          "frequency"),
+        "amplitude": _var(amp, meta, "FS", "tone peak amplitude in units of full scale"),
+        "power_dbfs": _var(10 * np.log10(power), meta, "dBFS", "tone power"),
+        "phase_rad": _var(ph0, meta, "rad", "tone phase at the first sample"),
+        "phase_deg": _var(np.degrees(ph0), meta, "deg", "tone phase at the first sample"),
+        "snr_db": _var(_field(res, "snr_db", meta), meta, "dB",
+                       "tone power over the residual (noise and distortion) power"),
+        "residual_rms": _var(np.sqrt(resid / meta["n"]), meta, "FS",
+                             "rms of the fit residual in units of full scale"),
+        "noise_power_dbfs": _var(10 * np.log10(np.maximum(noise, 1e-300)), meta, "dBFS",
+                                 "mean power of the fit residual per sample"),
+    }
+    if with_relative and meta["multi"]:
+        rel = (phc - phc[0] + np.pi) % (2 * np.pi) - np.pi
+        out["relative_phase_rad"] = quantity(rel, "rad", "phase relative to channel 0",
+                                             dims=("channel",))
+        out["relative_phase_deg"] = quantity(np.degrees(rel), "deg",
+                                             "phase relative to channel 0", dims=("channel",))
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# Public measurements
+# --------------------------------------------------------------------------------------------
+
+def measure_tone(cap: xr.DataArray, frequency_hz: float | None = None, *,
+                 refine: bool = True) -> xr.Dataset:
+    """Frequency, amplitude and phase of a tone, at the Cramer-Rao limit.
+
+    Parameters
+    ----------
+    cap : xarray.DataArray
+        Capture, dims ``("time",)`` or ``("channel", "time")``, complex or real, in memory or
+        lazy (dask; reduced chunk by chunk, any chunking, the result is lazy too).
+    frequency_hz : float, optional
+        Absolute frequency (``center_frequency`` + offset) of the tone to measure. ``None``
+        (default) measures the strongest line (for a real capture the strongest away from DC
+        and Nyquist). When given, the tone is looked for within three Welch bins
+        (``3 fs / L1``, ``L1`` = 4 x the fine segment, at most ``N``) of it.
+    refine : bool
+        With ``frequency_hz`` given: ``True`` (default) estimates the tone's frequency near
+        it; ``False`` measures amplitude and phase exactly at ``frequency_hz`` (a coherent,
+        lock-in style measurement; no "tone present" test is made then).
+
+    Returns
+    -------
+    xarray.Dataset
+        Per channel (dim ``channel`` for a multi-channel capture): ``frequency_hz``,
+        ``offset_hz`` (Hz), ``amplitude`` (FS, peak), ``power_dbfs`` (A^2 complex, A^2/2
+        real), ``phase_rad``/``phase_deg`` (at the first sample), ``snr_db`` (tone power over
+        the residual power per sample), ``residual_rms`` (FS), ``noise_power_dbfs``; for a
+        multi-channel capture also ``relative_phase_rad``/``relative_phase_deg``: each
+        channel's phase minus channel 0's, taken at the capture's centre where it is most
+        precise (for channels holding the same tone it is the same at every instant).
+
+    Raises
+    ------
+    MeasurementError
+        Fewer than 16 samples (4 with ``refine=False``), or no tone above the noise: the
+        integrated SNR ``N A^2 / sigma^2`` (complex) must exceed ``ln N + ln(1/1e-4)``, the
+        level a noise-only periodogram peak exceeds with probability about 1e-4.
+    ValueError
+        ``frequency_hz`` outside the band (complex: [fc - fs/2, fc + fs/2); real: strictly
+        between fc and fc + fs/2).
+
+    Notes
+    -----
+    Model: complex ``A exp(j(2 pi f t + phi))`` plus white noise, estimated by the
+    maximum of the periodogram; real ``A cos(2 pi f t + phi) + dc`` plus noise, estimated by
+    the IEEE Std 1241 four-parameter least-squares fit (the dc term is fitted, not reported).
+    Both are maximum-likelihood in white Gaussian noise and reach the Cramer-Rao bounds above
+    threshold (Rife & Boorstyn 1974): ``var(w) = 6 / (rho N (N^2 - 1))`` rad^2/sample^2 for a
+    complex tone with ``rho = A^2 / sigma^2``. See the module docstring for the passes made.
+
+    Examples
+    --------
+    >>> import numpy as np, quadkit
+    >>> cap = quadkit.synth.tone(12345.678, sample_rate=1e6, n_samples=100_000,
+    ...                          amplitude=0.5, phase_rad=2.5, center_frequency=915e6)
+    >>> cap = quadkit.synth.add_noise(cap, snr_db=20, rng=1)
+    >>> res = quadkit.recovery.measure_tone(cap)
+    >>> print(f"{float(res.offset_hz):.2f} Hz  A={float(res.amplitude):.4f}  "
+    ...       f"phase={float(res.phase_rad):.3f} rad  SNR={float(res.snr_db):.1f} dB")
+    12345.68 Hz  A=0.5000  phase=2.500 rad  SNR=20.0 dB
+    """
+    res, meta = _estimate(cap, frequency_hz, bool(refine), "measure_tone")
+    attrs = {"sample_rate": meta["fs"], "center_frequency": meta["fc"],
+             "n_samples": meta["n"], "model": "real sine + dc" if meta["real"] else
+             "complex exponential"}
+    return result(_tone_vars(res, meta, True), coords=_coords(cap, meta), attrs=attrs)
+
+
+def sine_fit(cap: xr.DataArray, frequency_hz: float | None = None) -> xr.Dataset:
+    """IEEE Std 1241 sine fit: three-parameter at a known frequency, four-parameter if not.
+
+    Parameters
+    ----------
+    cap : xarray.DataArray
+        Capture, real (the standard's case: one ADC record) or complex, one channel or many,
+        in memory or lazy (reduced chunk by chunk).
+    frequency_hz : float, optional
+        Known absolute frequency: the three-parameter fit (amplitude, phase, offset) is made at
+        exactly this frequency. ``None``: the four-parameter fit estimates the frequency too
+        (started from the search of :func:`measure_tone`, then Gauss-Newton iterations).
+
+    Returns
+    -------
+    xarray.Dataset
+        ``amplitude`` (FS), ``phase_rad``/``phase_deg`` (at the first sample, model
+        ``A cos(2 pi f t + phi) + C``), ``offset`` (FS, the fitted C; complex captures:
+        ``offset_i`` and ``offset_q``), ``frequency_hz``, ``offset_hz``, ``residual_rms``
+        (FS, the rms of the residuals, NAD_rms of the standard), ``sinad_db``
+        (``20 log10(A_rms / NAD_rms)``), ``enob_bits`` and ``enob_sinad_bits``.
+
+    Notes
+    -----
+    ENOB: ``enob_bits`` is the IEEE Std 1241 form ``log2(FSR / (NAD_rms sqrt(12)))`` with the
+    full-scale range ``FSR = 2 full_scale``; it does not depend on the test amplitude (an
+    ideal 12-bit converter gives 12 at any level). ``enob_sinad_bits`` is the datasheet form
+    ``(SINAD - 1.76) / 6.02``, equal to it only for a full-scale test signal (an ideal 12-bit
+    converter at -6.02 dBFS gives 11). For a complex capture the model is
+    ``A exp(j(2 pi f t + phi)) + C``, ``A_rms = A`` and NAD_rms per component is
+    ``residual_rms / sqrt(2)``.
+
+    Examples
+    --------
+    >>> import numpy as np, quadkit
+    >>> t = np.arange(4096) / 1e6
+    >>> q = 2 / 2**12                                  # 12-bit quantiser over +-1
+    >>> x = np.round(0.99 * np.cos(2 * np.pi * 10_007 * t + 1.0) / q) * q
+    >>> cap = quadkit.capture(x.astype(np.float32), sample_rate=1e6)
+    >>> fit = quadkit.recovery.sine_fit(cap)
+    >>> print(f"{float(fit.frequency_hz):.2f} Hz  A={float(fit.amplitude):.5f}  "
+    ...       f"ENOB={float(fit.enob_bits):.2f} bits")
+    10007.00 Hz  A=0.99000  ENOB=12.00 bits
+    """
+    func = "sine_fit"
+    data, lazy = _data2d(cap)
+    fs = _capture.sample_rate(cap)
+    fc = float(cap.attrs.get("center_frequency", 0.0))
+    real = not _capture.is_complex(cap)
+    nchan, n = data.shape
+    need = _MIN_SAMPLES_SEARCH if frequency_hz is None else _MIN_SAMPLES_FIXED
+    if n < need:
+        raise MeasurementError(f"{func}: the capture has {n} samples; at least {need} are "
+                               "needed for this fit")
+    if frequency_hz is None:
+        ratio = _search(data, lazy, n, real, None, func)
+        ratio = _refine(data, lazy, ratio, n, real)
+        if not real:  # the complex model has an offset too: polish with it
+            pass
+    else:
+        ratio = np.full(nchan, _offset_of(func, frequency_hz, fs, fc, real) / fs)
+    gram = _pass(data, lazy, _FixedFit, ratio, (1,), real)
+    res = _step(lazy, _finish_fit, gram, ratio, n, real, _capture.full_scale(cap), func)
+    meta = {"fs": fs, "fc": fc, "real": real, "n": n, "nchan": nchan,
+            "multi": cap.ndim == 2, "lazy": lazy}
+    f = _field
+    amp = f(res, "amplitude", meta)
+    ph = f(res, "phase0", meta)
+    ratio_v = f(res, "ratio", meta)
+    rms = f(res, "residual_rms", meta)
+    out = {
+        "amplitude": _var(amp, meta, "FS", "fitted peak amplitude in units of full scale"),
+        "phase_rad": _var(ph, meta, "rad", "fitted phase at the first sample"),
+        "phase_deg": _var(np.degrees(ph), meta, "deg", "fitted phase at the first sample"),
+    }
+    if real:
+        out["offset"] = _var(f(res, "dc", meta), meta, "FS", "fitted dc offset")
+    else:
+        out["offset_i"] = _var(f(res, "dc", meta), meta, "FS", "fitted dc offset of I")
+        out["offset_q"] = _var(f(res, "dc_q", meta), meta, "FS", "fitted dc offset of Q")
+    out.update({
+        "frequency_hz": _var(fc + ratio_v * fs, meta, "Hz", "fitted frequency (absolute)"),
+        "offset_hz": _var(ratio_v * fs, meta, "Hz", "fitted frequency offset"),
+        "residual_rms": _var(rms, meta, "FS", "rms of the fit residual (NAD rms)"),
+        "sinad_db": _var(f(res, "sinad_db", meta), meta, "dB",
+                         "signal to noise and distortion ratio"),
+        "enob_bits": _var(f(res, "enob_bits", meta), meta, "bit",
+                          "effective number of bits, IEEE Std 1241 full-scale-range form"),
+        "enob_sinad_bits": _var(f(res, "enob_sinad_bits", meta), meta, "bit",
+                                "effective number of bits, (SINAD - 1.76) / 6.02"),
+    })
+    attrs = {"sample_rate": fs, "center_frequency": fc, "n_samples": n,
+             "fit": "three-parameter" if frequency_hz is not None else "four-parameter",
+             "standard": "IEEE Std 1241"}
+    return result(out, coords=_coords(cap, meta), attrs=attrs)
+
+
+def _finish_fit(gram: np.ndarray, ratio: np.ndarray, n: int, real: bool, full_scale: float,
+                func: str) -> dict:
+    coef, dc, resid = _solve_fixed(gram, 1, real, func)
+    amp = np.abs(coef[:, 0])
+    phase0 = np.angle(coef[:, 0])
+    rms = np.sqrt(resid / n)
+    a_rms = amp / math.sqrt(2) if real else amp
+    nad = rms if real else rms / math.sqrt(2)
+    if np.any(rms <= 0):
+        raise MeasurementError(f"{func}: the residual is exactly zero; SINAD and ENOB are "
+                               "unbounded (is the capture a noiseless synthetic tone?)")
+    sinad = 20 * np.log10(a_rms / rms)
+    return {
+        "ratio": ratio, "amplitude": amp, "phase0": phase0, "dc": dc.real,
+        "dc_q": dc.imag, "residual_rms": rms, "sinad_db": sinad,
+        "enob_bits": np.log2(2 * full_scale / (nad * math.sqrt(12))),
+        "enob_sinad_bits": (sinad - 10 * math.log10(1.5)) / (20 * math.log10(2)),
+    }
+
+
+class _FixedFit:
+    """Augmented Gram of fixed-frequency regressors and the samples, per channel.
+
+    Regressors at the multiples ``hs`` of each channel's ratio, n counted from the first
+    sample: real ``cos, sin`` per multiple then ``1``; complex ``exp`` per multiple then ``1``.
+    The Gram is ``conj(w) @ w.T`` over the rows ``w = [regressors..., x]``.
+    """
+
+    @staticmethod
+    def prepare(nchan: int, ratio: np.ndarray, hs: tuple, real: bool) -> tuple:
+        return np.asarray(ratio, float), tuple(hs), real
+
+    @staticmethod
+    def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
+        ratio, hs, real = state
+        nchan, b = x.shape
+        p = 2 * len(hs) + 1 if real else len(hs) + 1
+        out = np.zeros((nchan, p + 1, p + 1), np.float64 if real else np.complex128)
+        if b == 0:
+            return out
+        for ch in range(nchan):
+            osc = np.exp(2j * np.pi * np.stack([phase_cycles(h * ratio[ch], offset, b)
+                                                for h in hs]))
+            if real:
+                w = np.concatenate([np.stack([osc.real, osc.imag], 1).reshape(-1, b),
+                                    np.ones((1, b)), x[ch][None, :].astype(np.float64)])
+            else:
+                w = np.concatenate([osc, np.ones((1, b)), x[ch][None, :].astype(np.complex128)])
+            out[ch] = np.conj(w) @ w.T
+        return out
+
+
+def _solve_fixed(gram: np.ndarray, nh: int, real: bool, func: str) -> tuple:
+    """Least squares from the augmented Gram: complex amplitudes (A e^{j phi}) per multiple,
+    the dc term (complex: I + jQ) and the residual energy, per channel."""
+    nchan, q, _ = gram.shape
+    p = q - 1
+    coef = np.empty((nchan, nh), np.complex128)
+    dc = np.empty(nchan, np.complex128)
+    resid = np.empty(nchan)
+    for ch in range(nchan):
+        g = gram[ch]
+        scale = np.sqrt(np.abs(np.diag(g[:p, :p])))
+        if np.any(scale <= 1e-9 * max(scale.max(), 1e-300)):
+            raise MeasurementError(f"{func}: a regressor vanishes over this capture (a "
+                                   "frequency at DC or Nyquist); the fit is not defined")
+        gs = g[:p, :p] / np.outer(scale, scale)
+        if np.linalg.cond(gs) > 1e10:
+            raise MeasurementError(f"{func}: the fit is singular: two fitted frequencies "
+                                   "coincide (after folding into the band) or the capture is "
+                                   "too short to tell them apart")
+        theta = _solve(gs, g[:p, p] / scale, func) / scale
+        r = g[:p, p]
+        resid[ch] = max(float(np.real(g[p, p] - 2 * np.real(np.vdot(theta, r))
+                                      + np.conj(theta) @ g[:p, :p] @ theta)), 0.0)
+        if real:
+            a, b = theta[0:2 * nh:2].real, theta[1:2 * nh:2].real
+            coef[ch] = a - 1j * b  # a cos + b sin = A cos(wn + phi): a = A cos phi, b = -A sin phi
+            dc[ch] = theta[2 * nh].real
+        else:
+            coef[ch] = theta[:nh]
+            dc[ch] = theta[nh]
+    return coef, dc, resid
