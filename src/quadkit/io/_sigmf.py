@@ -203,7 +203,8 @@ def read_sigmf(
     Examples
     --------
     >>> import tempfile, pathlib, quadkit
-    >>> cap = quadkit.synth.tone(1e3, sample_rate=8e3, n_samples=8, center_frequency=433.9e6)
+    >>> cap = quadkit.synth.tone(1e3, sample_rate=8e3, n_samples=8, amplitude=0.5,
+    ...                          center_frequency=433.9e6)
     >>> stem = pathlib.Path(tempfile.mkdtemp()) / "bench_tone"
     >>> quadkit.io.write_sigmf(cap, stem, dtype="ci16_le")
     >>> back = quadkit.io.read_sigmf(stem.with_suffix(".sigmf-meta"))
