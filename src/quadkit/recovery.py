@@ -272,33 +272,6 @@ class _RealGram:
         return out
 
 
-class _Harmonics:
-    """Augmented Gram of the harmonic regressors (real: cos/sin per harmonic + 1; complex:
-    exp per harmonic + 1) and the samples; complex Hermitian for complex captures."""
-
-    @staticmethod
-    def prepare(nchan: int, ratios: np.ndarray, real: bool) -> tuple:
-        return ratios, real
-
-    @staticmethod
-    def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
-        ratios, real = state
-        nchan, b = x.shape
-        nh = len(ratios)
-        osc = np.exp(2j * np.pi * np.stack([phase_cycles(r, offset, b) for r in ratios]))
-        if real:
-            cols = [osc.real, osc.imag, np.ones((1, b))]
-            v = np.concatenate(cols)  # (2 nh + 1, b)
-            out = np.zeros((nchan, 2 * nh + 2, 2 * nh + 2))
-        else:
-            v = np.concatenate([osc, np.ones((1, b))])
-            out = np.zeros((nchan, nh + 2, nh + 2), np.complex128)
-        for ch in range(nchan):
-            w = np.concatenate([v, x[ch][None, :].astype(v.dtype)])
-            out[ch] = np.conj(w) @ w.T
-        return out
-
-
 # --------------------------------------------------------------------------------------------
 # Estimation steps (small numpy computations between passes)
 # --------------------------------------------------------------------------------------------
@@ -723,8 +696,6 @@ def sine_fit(cap: xr.DataArray, frequency_hz: float | None = None) -> xr.Dataset
     if frequency_hz is None:
         ratio = _search(data, lazy, n, real, None, func)
         ratio = _refine(data, lazy, ratio, n, real)
-        if not real:  # the complex model has an offset too: polish with it
-            pass
     else:
         ratio = np.full(nchan, _offset_of(func, frequency_hz, fs, fc, real) / fs)
     gram = _pass(data, lazy, _FixedFit, ratio, (1,), real)
@@ -846,3 +817,464 @@ def _solve_fixed(gram: np.ndarray, nh: int, real: bool, func: str) -> tuple:
             coef[ch] = theta[:nh]
             dc[ch] = theta[nh]
     return coef, dc, resid
+
+
+def _fixed_meta(cap: xr.DataArray, data: Any, lazy: bool) -> dict:
+    return {"fs": _capture.sample_rate(cap), "fc": float(cap.attrs.get("center_frequency", 0.0)),
+            "real": not _capture.is_complex(cap), "n": data.shape[1], "nchan": data.shape[0],
+            "multi": cap.ndim == 2, "lazy": lazy}
+
+
+def _field_nd(res: Any, key: str, meta: dict, shape: tuple, dtype: Any = np.float64) -> Any:
+    if not meta["lazy"]:
+        return np.asarray(res[key])
+    import dask
+    import dask.array as da
+
+    item = dask.delayed(operator.getitem, pure=True)(res, key)
+    return da.from_delayed(item, shape=shape, dtype=dtype)
+
+
+def _finish_iq(gram: np.ndarray, func: str) -> dict:
+    coef, dc, _ = _solve_fixed(gram, 1, gram.dtype.kind != "c", func)
+    z = coef[:, 0]
+    return {"i": z.real, "q": z.imag, "amplitude": np.abs(z), "phase0": np.angle(z),
+            "dc": dc.real, "dc_q": dc.imag}
+
+
+def iq_components(real_cap: xr.DataArray, frequency_hz: float) -> xr.Dataset:
+    """In-phase and quadrature amplitudes of a signal at a known frequency.
+
+    A real capture holding ``A cos(2 pi f t + phi)`` gives ``I = A cos(phi)`` and
+    ``Q = A sin(phi)`` (so ``x = I cos(2 pi f t) - Q sin(2 pi f t)``, the complex-envelope
+    convention ``z = I + jQ = A exp(j phi)``), found by the IEEE Std 1241 three-parameter
+    least-squares fit of ``[cos, sin, 1]`` at ``frequency_hz`` (the dc term keeps an offset out
+    of I and Q; multiplying by a cosine and a negative sine and averaging is the same thing
+    over whole cycles). A complex capture holding ``A exp(j(2 pi f t + phi))`` gives the same
+    I and Q (least squares on ``[exp(j 2 pi f t), 1]``).
+
+    Parameters
+    ----------
+    real_cap : xarray.DataArray
+        Capture (real, or complex), one channel or many, in memory or lazy (one chunked pass).
+    frequency_hz : float
+        Absolute frequency (``center_frequency`` + offset); real captures: strictly between
+        0 and the Nyquist frequency offset.
+
+    Returns
+    -------
+    xarray.Dataset
+        ``i``, ``q``, ``amplitude`` (FS), ``phase_rad``, ``phase_deg`` (quadrant-correct, at
+        the first sample), ``frequency_hz``, ``offset_hz``.
+
+    Examples
+    --------
+    >>> import numpy as np, quadkit
+    >>> cap = quadkit.synth.tone(1e3, sample_rate=48e3, n_samples=4800, amplitude=0.8,
+    ...                          phase_rad=np.radians(-120), real=True)
+    >>> iq = quadkit.recovery.iq_components(cap, 1e3)
+    >>> print(f"I={float(iq.i):+.4f} Q={float(iq.q):+.4f} phase={float(iq.phase_deg):.2f} deg")
+    I=-0.4000 Q=-0.6928 phase=-120.00 deg
+    """
+    func = "iq_components"
+    data, lazy = _data2d(real_cap)
+    meta = _fixed_meta(real_cap, data, lazy)
+    if meta["n"] < _MIN_SAMPLES_FIXED:
+        raise MeasurementError(f"{func}: the capture has {meta['n']} samples; at least "
+                               f"{_MIN_SAMPLES_FIXED} are needed for the fit")
+    off = _offset_of(func, frequency_hz, meta["fs"], meta["fc"], meta["real"])
+    ratio = np.full(meta["nchan"], off / meta["fs"])
+    gram = _pass(data, lazy, _FixedFit, ratio, (1,), meta["real"])
+    res = _step(lazy, _finish_iq, gram, func)
+    f = _field
+    ph = f(res, "phase0", meta)
+    out = {
+        "i": _var(f(res, "i", meta), meta, "FS", "in-phase amplitude A cos(phi)"),
+        "q": _var(f(res, "q", meta), meta, "FS", "quadrature amplitude A sin(phi)"),
+        "amplitude": _var(f(res, "amplitude", meta), meta, "FS", "peak amplitude"),
+        "phase_rad": _var(ph, meta, "rad", "phase at the first sample"),
+        "phase_deg": _var(np.degrees(ph), meta, "deg", "phase at the first sample"),
+        "frequency_hz": _var(np.full(meta["nchan"], meta["fc"] + off), meta, "Hz",
+                             "frequency of the fit (absolute)"),
+        "offset_hz": _var(np.full(meta["nchan"], off), meta, "Hz", "frequency offset of the fit"),
+    }
+    return result(out, coords=_coords(real_cap, meta),
+                  attrs={"sample_rate": meta["fs"], "center_frequency": meta["fc"]})
+
+
+def _fold(ratio: float, real: bool) -> float:
+    """A frequency (cycles/sample) folded into [-0.5, 0.5) as sampling aliases it."""
+    return ((ratio + 0.5) % 1.0) - 0.5
+
+
+def _finish_harmonics(gram: np.ndarray, nh: int, real: bool, func: str) -> dict:
+    coef, dc, resid = _solve_fixed(gram, nh, real, func)
+    amp = np.abs(coef)
+    if np.any(amp[:, 0] <= 0):
+        raise MeasurementError(f"{func}: the fundamental has zero amplitude")
+    thd = np.sqrt(np.sum(amp[:, 1:] ** 2, axis=1)) / amp[:, 0]
+    return {"amplitude": amp, "phase0": np.angle(coef), "thd": thd}
+
+
+def harmonics(cap: xr.DataArray, fundamental_hz: float, n: int = 10) -> xr.Dataset:
+    """Amplitude and phase of the first ``n`` harmonics of a known fundamental.
+
+    Harmonic ``h`` of a real capture is modelled as ``A_h cos(2 pi h f0 t + phi_h)`` with
+    ``f0 = fundamental_hz - center_frequency``; of a complex capture as
+    ``A_h exp(j(2 pi h f0 t + phi_h))`` (harmonics of the baseband offset). All harmonics and
+    a dc term are fitted jointly by least squares (one chunked pass), so leakage between them
+    does not bias the result even without coherent sampling.
+
+    Aliasing: a harmonic above the Nyquist frequency is measured where sampling folds it,
+    ``h f0 - k fs`` in ``[-fs/2, fs/2)`` (reported as ``frequency_hz``/``offset_hz``); its
+    phase is that of the sampled sequence ``A_h cos(2 pi h f0 n / fs + phi_h)``, which is
+    what the samples determine. What lands on a folded frequency is the sum of everything
+    aliased there, so for a sampled periodic waveform the result equals its DFT-series
+    coefficient (a +-1 square wave of M samples per period gives exactly
+    ``4 / (M sin(pi h / M))`` for odd h). Harmonics that fold onto the same frequency, onto
+    DC, or (real captures) onto the Nyquist frequency cannot be separated: a
+    :class:`MeasurementError` names them; ask for fewer harmonics.
+
+    Parameters
+    ----------
+    cap : xarray.DataArray
+        Capture, real or complex, one channel or many, in memory or lazy.
+    fundamental_hz : float
+        Absolute frequency of the fundamental (estimate it first with
+        :func:`measure_tone` if it is not known exactly).
+    n : int
+        Number of harmonics, the fundamental being harmonic 1.
+
+    Returns
+    -------
+    xarray.Dataset
+        Along dim ``harmonic`` (coordinate 1..n; and ``channel`` if the capture has one):
+        ``amplitude`` (FS), ``power_dbfs``, ``level_dbc`` (relative to harmonic 1),
+        ``phase_rad``/``phase_deg`` (at the first sample), ``frequency_hz``/``offset_hz``
+        (where measured, folded); per channel ``thd_percent`` and ``thd_db``
+        (``sqrt(sum_{h>=2} A_h^2) / A_1``).
+
+    Examples
+    --------
+    >>> import numpy as np, quadkit
+    >>> m = 20                                     # samples per period of a +-1 square wave
+    >>> x = np.where(np.arange(20_000) % m < m // 2, 1.0, -1.0)
+    >>> cap = quadkit.capture(x, sample_rate=20e3)  # fundamental at 1 kHz
+    >>> h = quadkit.recovery.harmonics(cap, 1e3, n=5)
+    >>> np.round(h.amplitude.values, 4)            # 4 / (20 sin(pi h / 20)) for odd h
+    array([1.2785, 0.    , 0.4405, 0.    , 0.2828])
+    """
+    func = "harmonics"
+    n = check_positive_int(func, "n", n)
+    data, lazy = _data2d(cap)
+    meta = _fixed_meta(cap, data, lazy)
+    fs, fc, real = meta["fs"], meta["fc"], meta["real"]
+    off = _offset_of(func, fundamental_hz, fs, fc, real)
+    folded = np.array([_fold(h * off / fs, real) for h in range(1, n + 1)])
+    key = np.abs(folded) if real else folded
+    for h in range(n):
+        if abs(key[h]) < 1e-12 or (real and abs(key[h] - 0.5) < 1e-12):
+            where = "DC" if abs(key[h]) < 1e-12 else "the Nyquist frequency"
+            raise MeasurementError(
+                f"{func}: harmonic {h + 1} of {off:g} Hz folds onto {where} at "
+                f"sample_rate={fs:g}, where it cannot be measured; ask for n <= {h}")
+        for g in range(h):
+            if abs(key[g] - key[h]) < 1e-12:
+                raise MeasurementError(
+                    f"{func}: harmonics {g + 1} and {h + 1} of {off:g} Hz fold onto the same "
+                    f"frequency {folded[h] * fs:g} Hz at sample_rate={fs:g} and cannot be "
+                    f"separated; ask for n <= {h}")
+    need = (2 * n + 1) if real else (n + 1)
+    if meta["n"] < need:
+        raise MeasurementError(f"{func}: the capture has {meta['n']} samples; {n} harmonics "
+                               f"need at least {need}")
+    ratio = np.full(meta["nchan"], off / fs)
+    gram = _pass(data, lazy, _FixedFit, ratio, tuple(range(1, n + 1)), real)
+    res = _step(lazy, _finish_harmonics, gram, n, real, func)
+    shape = (meta["nchan"], n)
+    amp = _field_nd(res, "amplitude", meta, shape)
+    ph = _field_nd(res, "phase0", meta, shape)
+    thd = _field_nd(res, "thd", meta, (meta["nchan"],))
+    if not meta["multi"]:
+        amp, ph, thd = amp[0], ph[0], thd[0]
+    dims = ("channel", "harmonic") if meta["multi"] else ("harmonic",)
+    sdims = ("channel",) if meta["multi"] else ()
+    power = amp ** 2 / (2 if real else 1)
+    first = amp[..., :1]
+    with np.errstate(divide="ignore"):
+        out = {
+            "amplitude": quantity(amp, "FS", "harmonic peak amplitude", dims=dims),
+            "power_dbfs": quantity(10 * np.log10(power), "dBFS", "harmonic power", dims=dims),
+            "level_dbc": quantity(20 * np.log10(amp / first), "dBc",
+                                  "harmonic level relative to the fundamental", dims=dims),
+            "phase_rad": quantity(ph, "rad", "harmonic phase at the first sample", dims=dims),
+            "phase_deg": quantity(np.degrees(ph), "deg", "harmonic phase at the first sample",
+                                  dims=dims),
+            "frequency_hz": quantity(fc + folded * fs, "Hz",
+                                     "frequency where the harmonic is measured (folded)",
+                                     dims=("harmonic",)),
+            "offset_hz": quantity(folded * fs, "Hz", "offset where the harmonic is measured",
+                                  dims=("harmonic",)),
+            "thd_percent": quantity(100 * thd, "%", "total harmonic distortion", dims=sdims),
+            "thd_db": quantity(20 * np.log10(thd), "dB", "total harmonic distortion",
+                               dims=sdims),
+        }
+    coords = {"harmonic": np.arange(1, n + 1), **_coords(cap, meta)}
+    return result(out, coords=coords, attrs={"sample_rate": fs, "center_frequency": fc,
+                                             "fundamental_hz": float(fundamental_hz)})
+
+
+# --------------------------------------------------------------------------------------------
+# Streaming: analytic signal, envelope, instantaneous phase and frequency
+# --------------------------------------------------------------------------------------------
+
+def _hilbert_taps() -> np.ndarray:
+    """Odd-length type III Hilbert transformer: 2 / (pi k) at odd k, Kaiser-windowed."""
+    k = np.arange(-_HILBERT_HALF, _HILBERT_HALF + 1)
+    h = np.zeros(k.size)
+    odd = k % 2 == 1
+    h[odd] = 2.0 / (np.pi * k[odd])
+    return h * np.kaiser(k.size, _HILBERT_BETA)
+
+
+def _fir_valid(block: np.ndarray, taps: np.ndarray) -> np.ndarray:
+    from scipy.signal import oaconvolve
+
+    return oaconvolve(block, taps[None, :] if block.ndim == 2 else taps, mode="valid", axes=-1)
+
+
+def _analytic_data(cap: xr.DataArray, method: str | None, func: str) -> tuple[Any, str]:
+    if _capture.is_complex(cap):
+        raise ValueError(f"{func}: the capture is already complex (an IQ capture is its own "
+                         "analytic signal); pass a real capture")
+    lazy = _capture.is_lazy(cap)
+    if method is None:
+        method = "fir" if lazy else "fft"
+    check_option(func, "method", method, ("fft", "fir"))
+    x = cap.data
+    out_dtype = np.complex64 if x.dtype == np.float32 else np.complex128
+    if method == "fft":
+        if lazy:
+            raise ValueError(f"{func}: method='fft' needs the whole capture in memory; use "
+                             "method='fir' for a lazy capture (or .compute() it first)")
+        from scipy.signal import hilbert
+
+        return hilbert(np.asarray(x, np.float64), axis=-1).astype(out_dtype), method
+    taps = _hilbert_taps()
+    half = _HILBERT_HALF
+    if lazy:
+        import dask.array as da
+
+        depth = {x.ndim - 1: half}
+        if x.ndim == 2:
+            depth[0] = 0
+        # overlap needs every chunk at least as long as the depth: merge short ones (only
+        # those) into a neighbour; the time axis is never merged into one chunk for this.
+        sizes: list[int] = []
+        for size in x.chunks[-1]:
+            if sizes and (size < half or sizes[-1] < half):
+                sizes[-1] += size
+            else:
+                sizes.append(size)
+        if tuple(sizes) != x.chunks[-1]:
+            x = x.rechunk({x.ndim - 1: tuple(sizes)})
+
+        def block(b: np.ndarray) -> np.ndarray:
+            b = b.astype(np.float64)
+            inner = b[..., half:b.shape[-1] - half]
+            return (inner + 1j * _fir_valid(b, taps)).astype(out_dtype)
+
+        ext = da.overlap.overlap(x, depth=depth, boundary=0)
+        y = ext.map_blocks(block, dtype=out_dtype,
+                           chunks=x.chunks)
+        return y, method
+    xe = np.asarray(x, np.float64)
+    pad = [(0, 0)] * (xe.ndim - 1) + [(half, half)]
+    y = xe + 1j * _fir_valid(np.pad(xe, pad), taps)
+    return y.astype(out_dtype), method
+
+
+def _output(cap: xr.DataArray, data: Any, name: str, units: str, long_name: str,
+            **attrs: Any) -> xr.DataArray:
+    out = _capture.like(cap, data, start_index=_capture.start_index(cap), **attrs)
+    out.name = name
+    out.attrs.update(units=units, long_name=long_name)
+    return out
+
+
+def analytic(cap: xr.DataArray, *, method: Literal["fft", "fir"] | None = None) -> xr.DataArray:
+    """The analytic signal ``x + j H{x}`` of a real capture (a real cosine becomes
+    ``A exp(j(2 pi f t + phi))``).
+
+    Parameters
+    ----------
+    cap : xarray.DataArray
+        Real capture, dims ``("time",)`` or ``("channel", "time")``.
+    method : {"fft", "fir"}, optional
+        ``"fft"``: the whole capture's FFT with the negative frequencies removed, identical to
+        :func:`scipy.signal.hilbert` (treats the capture as one period: edges ring unless it
+        holds whole cycles). ``"fir"``: a streaming 513-tap Kaiser-windowed (beta 8.6) Hilbert
+        transformer applied with zero padding at the ends and overlap across chunk borders,
+        so a lazy capture stays lazy and the result does not depend on the chunking; in-band
+        error below about 1e-4 of the amplitude for frequencies between 0.01 fs and 0.49 fs.
+        Default: ``"fft"`` for a capture in memory, ``"fir"`` for a lazy one.
+
+    Returns
+    -------
+    xarray.DataArray
+        Complex capture (complex64 for float32 input, complex128 for float64), same dims,
+        time axis and attrs, plus ``analytic_method``.
+
+    Examples
+    --------
+    >>> import numpy as np, quadkit
+    >>> cap = quadkit.synth.tone(1e3, sample_rate=16e3, n_samples=160, real=True)
+    >>> z = quadkit.recovery.analytic(cap)
+    >>> np.round(z.values[:3], 4)                 # cos + j sin at 1/16 cycle per sample
+    array([1.    +0.j    , 0.9239+0.3827j, 0.7071+0.7071j], dtype=complex64)
+    """
+    data, method = _analytic_data(cap, method, "analytic")
+    return _output(cap, data, "iq", "FS", "analytic signal", analytic_method=method)
+
+
+def _complex_data(cap: xr.DataArray, method: str | None, func: str) -> tuple[Any, str | None]:
+    if _capture.is_complex(cap):
+        return cap.data, None
+    return _analytic_data(cap, method, func)
+
+
+def envelope(cap: xr.DataArray, *, method: Literal["fft", "fir"] | None = None) -> xr.DataArray:
+    """Magnitude of the complex envelope (complex capture) or of the analytic signal (real).
+
+    Parameters
+    ----------
+    cap : xarray.DataArray
+        Capture, complex or real, in memory or lazy (streaming, elementwise).
+    method : {"fft", "fir"}, optional
+        For a real capture, how the analytic signal is formed (see :func:`analytic`).
+
+    Returns
+    -------
+    xarray.DataArray
+        Real (float32 for complex64 input), units FS, same dims and time axis.
+
+    Examples
+    --------
+    >>> import numpy as np, quadkit
+    >>> cap = quadkit.synth.tone(1e3, sample_rate=1e6, n_samples=1000, amplitude=0.25)
+    >>> float(quadkit.recovery.envelope(cap).max().round(6))
+    0.25
+    """
+    z, method = _complex_data(cap, method, "envelope")
+    extra = {"analytic_method": method} if method else {}
+    return _output(cap, abs(z), "envelope", "FS", "envelope magnitude", **extra)
+
+
+def instantaneous_phase(cap: xr.DataArray, *, unwrap: bool = True,
+                        method: Literal["fft", "fir"] | None = None) -> xr.DataArray:
+    """Phase of the complex envelope (complex capture) or analytic signal (real), radians.
+
+    Parameters
+    ----------
+    cap : xarray.DataArray
+        Capture, complex or real, in memory or lazy.
+    unwrap : bool
+        ``True`` (default): remove the 2 pi jumps as :func:`numpy.unwrap` does, across chunk
+        borders too (the corrections are integers summed by a cumulative sum, so the result is
+        exactly ``angle + 2 pi k``); ``False``: the wrapped angle in (-pi, pi].
+    method : {"fft", "fir"}, optional
+        For a real capture, how the analytic signal is formed (see :func:`analytic`).
+
+    Returns
+    -------
+    xarray.DataArray
+        float64 (unwrapped; float32 wrapped for single-precision input), units rad. A complex
+        capture gives the baseband phase (the carrier's ``2 pi f_c t`` is not included).
+
+    Examples
+    --------
+    >>> import numpy as np, quadkit
+    >>> cap = quadkit.synth.tone(250e3, sample_rate=1e6, n_samples=9, phase_rad=0.5)
+    >>> np.round(quadkit.recovery.instantaneous_phase(cap).values[[0, 4, 8]], 3)
+    array([ 0.5  ,  6.783, 13.066])
+    """
+    z, method = _complex_data(cap, method, "instantaneous_phase")
+    lazy = _capture.is_lazy(cap)
+    if lazy:
+        import dask.array as da
+
+        ph = da.angle(z.astype(np.complex128) if unwrap else z)
+    else:
+        ph = np.angle(z.astype(np.complex128) if unwrap else z)
+    if unwrap and ph.shape[-1] > 1:
+        if lazy:
+            prev = da.concatenate([ph[..., :1], ph[..., :-1]], axis=-1).rechunk(ph.chunks)
+            k = da.map_blocks(_jumps, ph, prev, dtype=np.int64)
+            ph = ph + 2 * np.pi * da.cumsum(k, axis=-1)
+        else:
+            prev = np.concatenate([ph[..., :1], ph[..., :-1]], axis=-1)
+            ph = ph + 2 * np.pi * np.cumsum(_jumps(ph, prev), axis=-1)
+    extra = {"analytic_method": method} if method else {}
+    return _output(cap, ph, "phase", "rad", "instantaneous phase", **extra)
+
+
+def _jumps(p: np.ndarray, prev: np.ndarray) -> np.ndarray:
+    """Elementwise integer corrections from each sample and the one before it."""
+    dd = p - prev
+    ddmod = np.mod(dd + np.pi, 2 * np.pi) - np.pi
+    ddmod[(ddmod == -np.pi) & (dd > 0)] = np.pi
+    corr = ddmod - dd
+    corr[np.abs(dd) < np.pi] = 0
+    return np.rint(corr / (2 * np.pi)).astype(np.int64)
+
+
+def instantaneous_frequency(cap: xr.DataArray, *,
+                            method: Literal["fft", "fir"] | None = None) -> xr.DataArray:
+    """Instantaneous frequency, absolute (``center_frequency`` + offset), in Hz.
+
+    Sample n holds ``angle(z[n] conj(z[n-1])) fs / (2 pi)``, the mean frequency over the
+    interval from sample n-1 to n (exact for a tone anywhere in (-fs/2, fs/2)); sample 0
+    repeats sample 1's value so that the time axis is the capture's.
+
+    Parameters
+    ----------
+    cap : xarray.DataArray
+        Capture, complex or real (via its analytic signal), at least 2 samples, in memory or
+        lazy (streaming).
+    method : {"fft", "fir"}, optional
+        For a real capture, how the analytic signal is formed (see :func:`analytic`).
+
+    Returns
+    -------
+    xarray.DataArray
+        float64, units Hz, same dims and time axis.
+
+    Examples
+    --------
+    >>> import quadkit
+    >>> cap = quadkit.synth.tone(-123e3, sample_rate=1e6, n_samples=100,
+    ...                          center_frequency=433.92e6)
+    >>> f = quadkit.recovery.instantaneous_frequency(cap)
+    >>> round(float(f[50]) - 433.92e6, 1)
+    -123000.0
+    """
+    func = "instantaneous_frequency"
+    if cap.sizes.get("time", 0) < 2:
+        raise MeasurementError(f"{func}: the capture has {cap.sizes.get('time', 0)} samples; "
+                               "at least 2 are needed")
+    z, method = _complex_data(cap, method, func)
+    fs = _capture.sample_rate(cap)
+    fc = float(cap.attrs.get("center_frequency", 0.0))
+    z = z.astype(np.complex128)
+    if _capture.is_lazy(cap):
+        import dask.array as da
+
+        d = z[..., 1:] * da.conj(z[..., :-1])
+        d = da.concatenate([d[..., :1], d], axis=-1).rechunk(z.chunks)
+        f = fc + da.angle(d) * (fs / (2 * np.pi))
+    else:
+        d = z[..., 1:] * np.conj(z[..., :-1])
+        d = np.concatenate([d[..., :1], d], axis=-1)
+        f = fc + np.angle(d) * (fs / (2 * np.pi))
+    extra = {"analytic_method": method} if method else {}
+    return _output(cap, f, "frequency", "Hz", "instantaneous frequency (absolute)", **extra)
