@@ -432,3 +432,36 @@ def test_image_rejection_plot_against_frequency():
     fig2 = views.image_rejection_plot(two)
     np.testing.assert_allclose(_data(fig2, "image_rejection:1")["y"],
                                (irr + 10).astype(np.float32))
+
+
+# ------------------------------------------------------------------------------------------
+# captures straight in (the views call quadkit.spectral)
+# ------------------------------------------------------------------------------------------
+
+def test_spectrum_plot_of_a_capture_marks_tones_with_their_power():
+    cap = quadkit.synth.multitone([-123.4e3, 250.7e3], sample_rate=1e6, n_samples=2**16,
+                                  amplitudes=[0.5, 0.05], center_frequency=2.4e9)
+    cap = quadkit.synth.add_noise(cap, snr_db=60, rng=0)
+    fig = views.spectrum_plot(cap, nperseg=2048)
+    peaks = _data(fig, "peaks")
+    np.testing.assert_allclose(sorted(np.asarray(peaks["x"]) * 1e6),
+                               [2.4e9 - 123.4e3, 2.4e9 + 250.7e3], atol=50)
+    # Labels give each tone's power: 20 log10(A) dBFS for a complex tone of amplitude A.
+    for a in (0.5, 0.05):
+        assert any(f"{20 * np.log10(a):.1f} dBFS" in t for t in peaks["text"])
+    assert "RBW" in fig.title.text and "Hz" in fig.title.text
+
+
+def test_spectrogram_plot_of_a_capture_follows_a_chirp():
+    fs = 1e6
+    cap = quadkit.synth.chirp(-400e3, 400e3, sample_rate=fs, n_samples=2**18,
+                              center_frequency=100e6)
+    fig = views.spectrogram_plot(cap, nperseg=256)
+    img = _data(fig, "spectrogram")["image"][0]
+    assert img.dtype == np.float32 and img.shape[0] <= 600 and img.shape[1] == 256
+    # The brightest column follows the sweep: -400 kHz in the first row, +400 kHz in the
+    # last; column k holds offset (k - 128) * fs / 256 (fftshifted bins). Two bins of slack:
+    # a pooled row spans ~3.4 segments of a sweep moving 0.4 kHz per segment, plus leakage.
+    first, last = int(np.argmax(img[0])), int(np.argmax(img[-1]))
+    assert abs(first - (128 + (-400e3) * 256 / fs)) <= 2
+    assert abs(last - (128 + 400e3 * 256 / fs)) <= 2

@@ -497,27 +497,59 @@ def _simple_peaks(freq: np.ndarray, level: np.ndarray, count: int, prominence_db
     return freq[idx], level[idx]
 
 
-def _peaks_table(peaks: Any, ch: Any) -> tuple[np.ndarray, np.ndarray] | None:
-    """(frequency_hz, level) from a peaks result (Dataset) or a sequence of dicts."""
-    if peaks is None:
-        return None
+def _peaks_table(peaks: Any, ch: Any) -> tuple[np.ndarray, np.ndarray]:
+    """(frequency_hz, power) from a peaks result (Dataset) or a sequence of dicts.
+
+    A Dataset from :func:`quadkit.spectral.find_peaks` lists channels along ``tone`` with a
+    ``channel`` coordinate; its ``power_dbfs`` is the tone's total power.
+    """
     if isinstance(peaks, xr.Dataset):
-        p = _select(peaks, ch) if ch is not None and "channel" in peaks.dims else peaks
+        p = peaks
+        if ch is not None and "channel" in p.coords:
+            p = p.isel({p["channel"].dims[0]: np.flatnonzero(p["channel"].values == ch)}) \
+                if p["channel"].dims else p
         fkey = next((k for k in ("frequency_hz", "frequency") if k in p), None)
-        lkey = next((k for k in p.data_vars if str(k).startswith(("power", "level", "psd"))),
+        lkey = next((k for k in ("power_dbfs", "power_dbm", "power_db", "level_db") if k in p),
                     None)
-        if fkey is None or lkey is None:
-            raise ValueError("spectrum_plot: peaks needs 'frequency_hz' and a power variable")
+        if fkey is None:
+            raise ValueError("spectrum_plot: peaks needs a 'frequency_hz' variable")
         f = np.asarray(p[fkey].values, dtype=float).ravel()
-        lv = np.asarray(p[lkey].values, dtype=float).ravel()
-        ok = np.isfinite(f) & np.isfinite(lv)
-        return f[ok], lv[ok]
+        lv = np.asarray(p[lkey].values, dtype=float).ravel() if lkey else np.full(f.size, np.nan)
+        return f, lv
     rows = list(peaks)
     f = np.array([float(r["frequency_hz"]) for r in rows])
-    key = next((k for k in ("power_dbfs", "level_db", "power_db", "power_dbm") if rows and
+    key = next((k for k in ("power_dbfs", "power_dbm", "power_db", "level_db") if rows and
                 k in rows[0]), None)
     lv = np.array([float(r[key]) for r in rows]) if key else np.full(len(rows), np.nan)
     return f, lv
+
+
+def _auto_peaks(spec: xr.DataArray, ch: Any, freq: np.ndarray, trace: np.ndarray,
+                count: int, prominence_db: float) -> tuple[np.ndarray, np.ndarray]:
+    """Peaks of one trace: quadkit.spectral.find_peaks for its spectra, scipy otherwise."""
+    if all(k in spec.attrs for k in ("window", "nperseg", "sample_rate")) and "offset" in \
+            spec.coords:
+        from . import spectral
+
+        one = _select(spec, ch)
+        try:
+            table = spectral.find_peaks(one, threshold_db=prominence_db, max_peaks=count)
+        except (ValueError, KeyError):
+            table = None
+        if table is not None:
+            return _peaks_table(table, None)
+    pf, pl = _simple_peaks(freq, trace, count, prominence_db)
+    return pf, pl
+
+
+def _marker_levels(freq: np.ndarray, trace: np.ndarray, pf: np.ndarray) -> np.ndarray:
+    """Trace level at each peak (the largest of the nearest bin and its neighbours)."""
+    if pf.size == 0:
+        return np.empty(0)
+    k = np.clip(np.searchsorted(freq, pf), 0, freq.size - 1)
+    k = np.where((k > 0) & (np.abs(freq[k - 1] - pf) < np.abs(freq[k] - pf)), k - 1, k)
+    lo, hi = np.clip(k - 1, 0, freq.size - 1), np.clip(k + 1, 0, freq.size - 1)
+    return np.maximum(np.maximum(trace[lo], trace[k]), trace[hi])
 
 
 def spectrum_plot(
@@ -547,11 +579,10 @@ def spectrum_plot(
         Draw into it (for example to overlay a corrected spectrum).
     channel : label or list, optional
     peaks : "auto", None, Dataset or list of dicts
-        ``"auto"`` marks up to ``n_peaks`` peaks standing ``prominence_db`` above their
-        surroundings (display markers only; measure peaks with
-        :func:`quadkit.spectral.find_peaks`); ``None`` marks none; a Dataset with
-        ``frequency_hz`` and a ``power*`` variable (or dicts with ``frequency_hz`` and
-        ``power_dbfs``) marks those.
+        ``"auto"`` marks up to ``n_peaks`` peaks standing ``prominence_db`` above the local
+        floor, found by :func:`quadkit.spectral.find_peaks` (labels give each tone's total
+        power); ``None`` marks none; a :func:`~quadkit.spectral.find_peaks` result (or dicts
+        with ``frequency_hz`` and ``power_dbfs``) marks those. Markers sit on the trace.
     max_points : int
         A spectrum with more bins is shown as min/max envelopes over this many bins (peaks
         kept).
@@ -613,17 +644,19 @@ def spectrum_plot(
         fig.line("x", "y", source=src, name=name, line_width=1.2,
                  color=colour or (PALETTE["trace"] if ch is None else _channel_colour(k)),
                  legend_label=f"{base} ({rbw_text})")
+        if peaks is None:
+            continue
         if isinstance(peaks, str):
             check_option("spectrum_plot", "peaks", peaks, ("auto",))
-            pf, pl = _simple_peaks(freq, trace, int(n_peaks), float(prominence_db))
+            pf, pw = _auto_peaks(spec, ch, freq, trace, int(n_peaks), float(prominence_db))
         else:
-            table = _peaks_table(peaks, ch)
-            pf, pl = table if table is not None else (np.empty(0), np.empty(0))
-            if pl.size and np.isnan(pl).any():
-                pl = np.interp(pf, freq, trace)
+            pf, pw = _peaks_table(peaks, ch)
+        level = _marker_levels(freq, trace, pf)
         peak_x += list(pf / fscale)
-        peak_y += list(pl)
-        peak_text += [f"{_fmt_hz(f)}  {v:.1f} {units}" for f, v in zip(pf, pl)]
+        peak_y += list(level)
+        punit = "dBm" if "dBm" in units else "dBFS" if "dBFS" in units else units
+        peak_text += [f"{_fmt_hz(f)}  {w:.1f} {punit}" if np.isfinite(w)
+                      else f"{_fmt_hz(f)}  {v:.1f} {units}" for f, w, v in zip(pf, pw, level)]
     if peaks is not None:
         psrc = models.ColumnDataSource({"x": peak_x, "y": peak_y, "text": peak_text})
         fig.scatter("x", "y", source=psrc, name="peaks", marker="inverted_triangle", size=9,
