@@ -1,9 +1,9 @@
 """The demo captures: four SigMF recordings from our own (invented) receiver bench.
 
 ``quadkit demo DIR`` and ``python scripts/make_demo_data.py`` write them with a fixed seed.
-Each records the true values it was made with under the ``truth`` namespace of its metadata
-(``truth:gain_imbalance_db`` and so on), so what quadkit measures can be set beside what was put
-in. The scenarios are made up for the demo: the "RX-7" zero-IF receiver board under bring-up on
+Each records the true values it was made with under the ``truth`` namespace of its SigMF
+global object (``truth:gain_imbalance_db`` and so on; :func:`truth` reads them back), so
+what quadkit measures can be set beside what was put in. The scenarios are made up for the demo: the "RX-7" zero-IF receiver board under bring-up on
 bench 3, a test transmitter, an IF strip and a band survey.
 
 Caution: these are synthetic recordings for analysis. If you replay a generated waveform through
@@ -21,7 +21,7 @@ import xarray as xr
 
 from . import _capture, synth
 
-__all__ = ["DEMO_FILES", "make_demo", "write_demo"]
+__all__ = ["DEMO_FILES", "make_demo", "write_demo", "truth"]
 
 SEED = 20261201
 
@@ -34,8 +34,28 @@ DEMO_FILES = {
 }
 
 
+_TRUTH_EXTENSION = {"name": "truth", "version": "1.0.0", "optional": True}
+
+
 def _truth(values: dict[str, Any]) -> dict[str, Any]:
-    return {f"truth:{k}": v for k, v in values.items()}
+    """Attrs that put ``values`` in the SigMF global object under the ``truth`` namespace."""
+    fields: dict[str, Any] = {f"truth:{k}": v for k, v in values.items()}
+    fields["core:extensions"] = [dict(_TRUTH_EXTENSION)]
+    return {"sigmf_extra": {"global": fields}}
+
+
+def truth(cap: xr.DataArray) -> dict[str, Any]:
+    """The true values a demo capture was made with (its ``truth:`` metadata), namespace dropped.
+
+    Examples
+    --------
+    >>> import quadkit
+    >>> from quadkit.demo import make_demo, truth
+    >>> truth(make_demo("real_if"))["carrier_hz"]
+    2000000.0
+    """
+    fields = (cap.attrs.get("sigmf_extra") or {}).get("global", {})
+    return {k[len("truth:"):]: v for k, v in fields.items() if k.startswith("truth:")}
 
 
 def bench_tone(rng: np.random.Generator) -> xr.DataArray:
@@ -44,9 +64,9 @@ def bench_tone(rng: np.random.Generator) -> xr.DataArray:
 
     fs, n, fc = 1e6, 2**19, 2.4415e9
     tone_offset, tone_amp, tone_phase = 125e3, 0.5, 0.4
-    spur_offset, spur_amp = -287.5e3, 10 ** (-72 / 20)
+    spur_offset, spur_amp = -287.5e3, 10 ** (-60 / 20)
     noise_dbfs_hz = -105.0
-    truth = {
+    true = {
         "tone_offset_hz": tone_offset,
         "tone_frequency_hz": fc + tone_offset,
         "tone_power_dbfs": 20 * np.log10(tone_amp),
@@ -60,8 +80,8 @@ def bench_tone(rng: np.random.Generator) -> xr.DataArray:
         "phase_noise_offsets_hz": [1e3, 10e3, 100e3],
         "phase_noise_dbc_hz": [-85.0, -95.0, -115.0],
     }
-    truth["image_rejection_db"] = float(
-        impairments.image_rejection(truth["gain_imbalance_db"], truth["phase_skew_deg"]))
+    true["image_rejection_db"] = float(
+        impairments.image_rejection(true["gain_imbalance_db"], true["phase_skew_deg"]))
     clean = synth.multitone([tone_offset, spur_offset], sample_rate=fs, n_samples=n,
                             amplitudes=[tone_amp, spur_amp], phases_rad=[tone_phase, 0.0],
                             center_frequency=fc, dtype=np.complex128)
@@ -70,12 +90,12 @@ def bench_tone(rng: np.random.Generator) -> xr.DataArray:
         rng=rng, exact_power=False, dtype=np.complex128).values)
     impaired = impairments.apply(
         noisy,
-        gain_imbalance_db=truth["gain_imbalance_db"],
-        phase_skew_deg=truth["phase_skew_deg"],
-        dc_i=truth["dc_i"],
-        dc_q=truth["dc_q"],
-        phase_noise={"offsets_hz": truth["phase_noise_offsets_hz"],
-                     "dbc_hz": truth["phase_noise_dbc_hz"]},
+        gain_imbalance_db=true["gain_imbalance_db"],
+        phase_skew_deg=true["phase_skew_deg"],
+        dc_i=true["dc_i"],
+        dc_q=true["dc_q"],
+        phase_noise={"offsets_hz": true["phase_noise_offsets_hz"],
+                     "dbc_hz": true["phase_noise_dbc_hz"]},
         rng=rng,
     )
     return _capture.like(
@@ -84,7 +104,7 @@ def bench_tone(rng: np.random.Generator) -> xr.DataArray:
                     "first light before calibration",
         hardware="RX-7 rev C zero-IF receiver board (quadkit bench, invented for the demo)",
         start_time="2026-11-02T09:14:05Z",
-        **_truth(truth),
+        **_truth(true),
     )
 
 
@@ -101,13 +121,15 @@ def qpsk_burst(rng: np.random.Generator) -> xr.DataArray:
                         np.zeros(guard)])
     cap = _capture.capture(x.astype(np.complex128), sample_rate=fs, center_frequency=fc)
     cap = impairments.apply(cap, frequency_offset_hz=cfo)
-    # Es/N0: symbol energy (amp^2 per sample x samples per symbol) over the noise density.
+    # Es/N0 in per-sample units: Es = (mean sample power in the burst) x (samples per symbol),
+    # and N0 is the variance of white noise per complex sample.
     sps = fs / rs
-    n0 = amp**2 * sps / 10 ** (es_n0_db / 10)  # noise power per sample, full band
+    burst_power = float(np.mean(np.abs(x[guard:guard + burst.sizes["time"]]) ** 2))
+    n0 = burst_power * sps / 10 ** (es_n0_db / 10)
     noise = synth.noise(sample_rate=fs, n_samples=x.size, power_dbfs=10 * np.log10(n0),
                         rng=rng, exact_power=False, dtype=np.complex128).values
     y = cap.values + noise
-    truth = {
+    true = {
         "scheme": "qpsk",
         "symbol_rate_hz": rs,
         "rolloff": rolloff,
@@ -126,7 +148,7 @@ def qpsk_burst(rng: np.random.Generator) -> xr.DataArray:
                     "by RX-7 with its synthesiser 3.2 kHz off",
         hardware="TX-2 test transmitter into RX-7 rev C over a 60 dB attenuator pad (invented)",
         start_time="2026-11-02T10:02:41Z",
-        **_truth(truth),
+        **_truth(true),
     )
 
 
@@ -139,7 +161,7 @@ def real_if(rng: np.random.Generator) -> xr.DataArray:
                         amplitudes=[main_amp, side_amp], phases_rad=[main_phase, 0.9],
                         dtype=np.float64).values
     x = x + rng.standard_normal(n) * 10 ** (-62 / 20)
-    truth = {
+    true = {
         "carrier_hz": f_if,
         "tone_frequency_hz": main_f,
         "tone_amplitude": main_amp,
@@ -156,7 +178,7 @@ def real_if(rng: np.random.Generator) -> xr.DataArray:
                     "above the IF carrier and a weaker one 30 kHz below",
         hardware="RX-3 superhet IF strip with a 14-bit ADC (invented)",
         start_time="2026-11-03T14:30:00Z",
-        **_truth(truth),
+        **_truth(true),
     )
 
 
@@ -174,7 +196,7 @@ def band_survey(rng: np.random.Generator) -> xr.DataArray:
     ]
     total = np.zeros(n, np.complex128)
     annotations = []
-    truth: dict[str, Any] = {"carriers": []}
+    true: dict[str, Any] = {"carriers": []}
     for label, offset, kind, width, power in carriers:
         amp = 10 ** (power / 20)
         if kind == "tone":
@@ -205,14 +227,14 @@ def band_survey(rng: np.random.Generator) -> xr.DataArray:
             "label": label,
             "comment": f"{kind} carrier, {power:.0f} dBFS",
         })
-        truth["carriers"].append({
+        true["carriers"].append({
             "label": label, "offset_hz": offset, "frequency_hz": fc + offset, "kind": kind,
             "width_hz": width, "power_dbfs": power, "occupied_bandwidth_hz": occupied,
         })
     noise_density = -110.0
     total += synth.noise(sample_rate=fs, n_samples=n, power_dbfs=noise_density + 10 * np.log10(fs),
                          rng=rng, exact_power=False, dtype=np.complex128).values
-    truth["noise_density_dbfs_hz"] = noise_density
+    true["noise_density_dbfs_hz"] = noise_density
     return _capture.capture(
         total.astype(np.complex64), sample_rate=fs, center_frequency=fc,
         description="band survey of our 868 MHz test band from the roof antenna of lab 2: "
@@ -220,7 +242,7 @@ def band_survey(rng: np.random.Generator) -> xr.DataArray:
         hardware="RX-7 rev C on the roof mast, 4 MS/s (invented)",
         start_time="2026-11-04T07:45:12Z",
         annotations=annotations,
-        **_truth(truth),
+        **_truth(true),
     )
 
 

@@ -296,7 +296,7 @@ def figure_line(name: str, value: Any, units: str) -> str:
     """One line of the readable table: name, value with sensible digits, unit."""
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         text = "n/a"
-    elif name == "samples":
+    elif name == "samples" or (units == "1" and float(value).is_integer()):
         text = f"{int(value):,}"
     elif units == "Hz":
         text = _si(float(value), "Hz")
