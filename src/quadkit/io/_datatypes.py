@@ -106,32 +106,32 @@ def parse_datatype(name: object, *, source: str = "datatype") -> SampleFormat:
     return SampleFormat(name, m.group("cr") == "c", base[0], int(base[1:]), order)
 
 
-def decode(raw: np.ndarray, fmt: SampleFormat) -> np.ndarray:
+def decode(raw: np.ndarray, fmt: SampleFormat, *, scratch: bool = False) -> np.ndarray:
     """Turn stored components (any shape, last axis interleaved I/Q) into samples.
 
     ``raw`` has dtype ``fmt.component``; the result has ``fmt.output`` and, for complex
-    formats, half the length along the last axis. One pass for 8/16-bit integers: the
-    multiply ufunc reads the integers and writes float32 directly.
+    formats, half the length along the last axis. Integers take one pass: the multiply
+    ufunc reads them and writes float32 directly; the only rounding is int -> float32
+    (none for 8/16 bits), since scaling by a power of two is exact. Unsigned codes are
+    first re-centred exactly by flipping the top bit (x XOR 2**(b-1) read as signed equals
+    x - 2**(b-1)); with ``scratch=True`` that flip is done in ``raw`` itself (which the
+    caller then must not use), saving a pass.
     """
     if fmt.kind == "f":
         comp = raw.astype(np.float64 if fmt.bits == 64 else np.float32, copy=False)
         if not comp.flags.c_contiguous:
             comp = np.ascontiguousarray(comp)
-    elif fmt.bits <= 16:
-        comp = np.empty(raw.shape, np.float32)
-        if fmt.kind == "u":
-            # (x - mid)/mid = x/mid - 1, both steps exact in float32 for b <= 16
-            np.multiply(raw, np.float32(1.0 / fmt.scale), out=comp, dtype=np.float32)
-            np.subtract(comp, np.float32(1.0), out=comp)
-        else:
-            np.multiply(raw, np.float32(1.0 / fmt.scale), out=comp, dtype=np.float32)
     else:
-        # 32-bit integers: scale in float64 (exact), then round once to float32.
-        wide = raw.astype(np.float64)
         if fmt.kind == "u":
-            wide -= fmt.midcode
-        wide *= 1.0 / fmt.scale
-        comp = wide.astype(np.float32)
+            # the ufunc writes native byte order, so view the result as native signed ints
+            top = raw.dtype.type(1 << (fmt.bits - 1))
+            if scratch and raw.dtype.isnative and raw.flags.writeable:
+                flipped = np.bitwise_xor(raw, top, out=raw)
+            else:
+                flipped = np.bitwise_xor(raw, top)
+            raw = flipped.view(np.dtype(f"=i{fmt.bits // 8}"))
+        comp = np.empty(raw.shape, np.float32)
+        np.multiply(raw, np.float32(2.0 ** (1 - fmt.bits)), out=comp, dtype=np.float32)
     if fmt.is_complex:
         return comp.view(np.complex128 if comp.dtype == np.float64 else np.complex64)
     return comp
@@ -161,9 +161,12 @@ def encode(samples: np.ndarray, fmt: SampleFormat) -> np.ndarray:
     if fmt.kind == "f":
         return comp.astype(fmt.component)
     info = np.iinfo(fmt.component)
-    work = comp.astype(np.float64) * fmt.scale
+    # float32 holds every 8/16-bit code and its products by 2**(b-1) exactly; 32-bit codes
+    # need float64 (2**31 - 1 is not a float32)
+    work_type = np.float32 if fmt.bits <= 16 and comp.dtype == np.float32 else np.float64
+    work = np.multiply(comp, work_type(fmt.scale), dtype=work_type)
     if fmt.midcode:
-        work += fmt.midcode
+        work += work_type(fmt.midcode)
     np.rint(work, out=work)
     np.clip(work, info.min, info.max, out=work)
     return work.astype(fmt.component)

@@ -46,7 +46,7 @@ def read_block(
         n = count * channels * per
         raw = np.fromfile(path, dtype=fmt.component, count=n, offset=offset)
         _check_length(path, raw.size, n, offset, fmt)
-        out = decode(raw, fmt)
+        out = decode(raw, fmt, scratch=True)
         if channels > 1:
             out = np.ascontiguousarray(out.reshape(count, channels).T)
         return out
@@ -55,7 +55,7 @@ def read_block(
         start = offset + k * row_stride
         raw = np.fromfile(path, dtype=fmt.component, count=count * per, offset=start)
         _check_length(path, raw.size, count * per, start, fmt)
-        rows.append(decode(raw, fmt))
+        rows.append(decode(raw, fmt, scratch=True))
     return rows[0] if channels == 1 else np.stack(rows)
 
 
