@@ -510,21 +510,26 @@ def _find_burst(x: np.ndarray, sps: float) -> tuple[int, int, bool]:
     return max(0, int(a) - pad), min(x.size, int(b) + pad), True
 
 
-def _trim(z: np.ndarray) -> tuple[int, int]:
-    """First and one-past-last symbol of a burst among symbol-spaced matched-filter outputs.
+def _trim(y: np.ndarray, points: np.ndarray, sigma2: float) -> tuple[int, int]:
+    """First and one-past-last symbol of a burst among normalised symbol-spaced outputs.
 
-    Instants before the first and after the last symbol carry only noise. With the energies
-    normalised to the middle half's mean, the first symbol is where the running sum of
-    (energy - 1/2) is lowest (a CUSUM change point, Page 1954, memory), likewise from the end.
+    Per instant, the log-likelihood ratio of "a constellation point plus complex Gaussian
+    noise of variance sigma2" against "noise alone"; the burst starts where the running sum
+    of the ratios is lowest and ends where the running sum from the end is lowest (Page's
+    CUSUM change-point test, memory).
     """
-    n = z.size
-    e = np.abs(z) ** 2
-    mid = e[n // 4: n - n // 4]
-    d = e / max(float(np.mean(mid)), 1e-300) - 0.5
-    i0 = int(np.argmin(np.concatenate(([0.0], np.cumsum(d)))))
-    j = int(np.argmin(np.concatenate(([0.0], np.cumsum(d[::-1])))))
-    i1 = n - j
-    return (i0, i1) if i1 - i0 >= n // 2 else (0, n)
+    from scipy.special import logsumexp
+
+    llr = np.empty(y.size)
+    block = max(1, 2 ** 20 // points.size)
+    for s in range(0, y.size, block):
+        yy = y[s:s + block]
+        d2 = np.abs(yy[:, None] - points[None, :]) ** 2
+        llr[s:s + block] = logsumexp(-d2 / sigma2, axis=1) - math.log(points.size) \
+            + np.abs(yy) ** 2 / sigma2
+    i0 = int(np.argmin(np.concatenate(([0.0], np.cumsum(llr)))))
+    j = int(np.argmin(np.concatenate(([0.0], np.cumsum(llr[::-1])))))
+    return i0, y.size - j
 
 
 def _decide(y: np.ndarray, points: np.ndarray) -> np.ndarray:
@@ -603,61 +608,73 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     # 2. Timing again on the derotated signal, and the symbols with the full matched filter.
     u = instants(x1[0])
     z, dc_reg = _mf_at(x1, u, sps, beta, _MF_SPAN / 2)
-    # 3. Keep the instants that hold symbols (a burst's first to last).
-    i0, i1 = _trim(z)
-    z, dc_reg, u = z[i0:i1], dc_reg[i0:i1], u[i0:i1]
-    if z.size < _MIN_SYMBOLS:
-        raise MeasurementError(f"analyze: only {z.size} symbols found, need {_MIN_SYMBOLS}")
-    # 4. Fine frequency, phase, gain and IQ offset.
-    def decide(y: np.ndarray) -> np.ndarray:
+    idx = np.arange(z.size)  # symbol index; pi/2-BPSK parity and the phase ramp use it
+    m_ref = np.mean(pts ** m_pow)
+
+    def parity_rot(ix: np.ndarray) -> np.ndarray:
+        return np.where(ix % 2 == 1, 1j, 1.0 + 0j)
+
+    def decide(y: np.ndarray, ix: np.ndarray) -> np.ndarray:
         if pi2:
-            rr = _pi2_rotation(y.size)
+            rr = parity_rot(ix)
             return _decide(y * np.conj(rr), pts) * rr
         return _decide(y, pts)
 
-    zb = z * np.conj(_pi2_rotation(z.size)) if pi2 else z
-    m_ref = np.mean(pts ** m_pow)
-    nu_m, amp, _ = _tone_fit(zb ** m_pow, 0.0, 0.5)
-    nu = nu_m / m_pow
-    kk = np.arange(z.size) - (z.size - 1) / 2
-    gain = math.sqrt(np.mean(np.abs(z) ** 2) / np.mean(np.abs(pts) ** 2)) * \
-        np.exp(1j * (np.angle(amp) - np.angle(m_ref)) / m_pow)
-    dc = 0j
-    bin_w = 1.0 / z.size
+    def normalise(sel: slice, nu: float, gain: complex, dc: complex) -> np.ndarray:
+        return (z[sel] - dc * dc_reg[sel]) / (gain * np.exp(2j * np.pi * nu * idx[sel]))
 
-    def fit(ideal: np.ndarray, nu: float) -> tuple[float, complex, complex]:
-        w = (z - dc * dc_reg) * np.conj(ideal) if remove_iq_offset else z * np.conj(ideal)
-        nu, _, _ = _tone_fit(w, nu, 4 * bin_w)
+    def fit(sel: slice, ideal: np.ndarray, nu: float, dc: complex) -> tuple[float, complex, complex]:
+        # Maximum-likelihood frequency of z * conj(ideal), then least squares of
+        # z = gain * ideal * exp(j 2 pi nu k) + dc * (matched-filtered, derotated DC).
+        zz, uu, kk = z[sel], dc_reg[sel], idx[sel]
+        w = (zz - dc * uu) * np.conj(ideal)
+        nu, _, _ = _tone_fit(w, nu, 4.0 / kk.size)
         a_col = ideal * np.exp(2j * np.pi * nu * kk)
         if remove_iq_offset:
-            coef, *_ = np.linalg.lstsq(np.stack((a_col, dc_reg), axis=1), z, rcond=None)
+            coef, *_ = np.linalg.lstsq(np.stack((a_col, uu), axis=1), zz, rcond=None)
             return nu, complex(coef[0]), complex(coef[1])
-        return nu, complex(np.vdot(a_col, z) / np.vdot(a_col, a_col)), 0j
+        return nu, complex(np.vdot(a_col, zz) / np.vdot(a_col, a_col)), 0j
 
-    for _ in range(4):
-        y = (z - dc * dc_reg) / (gain * np.exp(2j * np.pi * nu * kk))
-        ideal = decide(y)
-        nu, gain, dc = fit(ideal, nu)
-    keep = slice(None)
+    def converge(sel: slice, nu: float, gain: complex, dc: complex, n_iter: int):
+        for _ in range(n_iter):
+            ideal = decide(normalise(sel, nu, gain, dc), idx[sel])
+            nu, gain, dc = fit(sel, ideal, nu, dc)
+        return nu, gain, dc, decide(normalise(sel, nu, gain, dc), idx[sel])
+
+    # 3. Fine frequency, phase and gain from the M-th power of the middle half of the
+    #    symbols (inside any burst), then decision-directed fits with the IQ offset.
+    n = z.size
+    mid = slice(n // 4, n - n // 4) if n >= 4 * _MIN_SYMBOLS else slice(0, n)
+    zz, kk = z[mid], idx[mid]
+    zb = zz * np.conj(parity_rot(kk)) if pi2 else zz
+    nu_m, _, _ = _tone_fit(zb ** m_pow, 0.0, 0.5)
+    amp = np.mean(zb ** m_pow * np.exp(-2j * np.pi * nu_m * kk))
+    nu = nu_m / m_pow
+    gain = math.sqrt(np.mean(np.abs(zz) ** 2) / np.mean(np.abs(pts) ** 2)) * \
+        np.exp(1j * (np.angle(amp) - np.angle(m_ref)) / m_pow)
+    nu, gain, dc, ideal = converge(mid, nu, gain, 0j, 4)
+    sigma2 = max(float(np.mean(np.abs(normalise(mid, nu, gain, dc) - ideal) ** 2)), 1e-10)
+    # 4. The burst's first and last symbols: instants outside carry only noise.
+    y = normalise(slice(None), nu, gain, dc)
+    i0, i1 = _trim(y * np.conj(parity_rot(idx)) if pi2 else y, pts, sigma2)
+    if i1 - i0 < _MIN_SYMBOLS:
+        raise MeasurementError(
+            f"analyze: only {max(0, i1 - i0)} symbols found, need at least {_MIN_SYMBOLS}"
+        )
+    sel = slice(i0, i1)
+    nu, gain, dc, ideal = converge(sel, nu, gain, dc, 2)
     lag = None
     if ref is not None:
-        y = (z - dc * dc_reg) / (gain * np.exp(2j * np.pi * nu * kk))
-        lag, k0, k1 = _align(y, ref)
+        lag, k0, k1 = _align(normalise(sel, nu, gain, dc), ref)
         if k1 - k0 < _MIN_SYMBOLS:
             raise MeasurementError(
                 f"analyze: the reference overlaps only {max(0, k1 - k0)} measured symbols"
             )
-        keep = slice(k0, k1)
-        z, dc_reg, u, kk = z[keep], dc_reg[keep], u[keep], kk[keep]
         ideal = ref[k0 + lag:k1 + lag]
+        sel = slice(i0 + k0, i0 + k1)
         for _ in range(2):
-            nu, gain, dc = fit(ideal, nu)
-    else:
-        y = (z - dc * dc_reg) / (gain * np.exp(2j * np.pi * nu * kk))
-        ideal = decide(y)
-        nu, gain, dc = fit(ideal, nu)
-    if z.size < _MIN_SYMBOLS:
-        raise MeasurementError(f"analyze: only {z.size} symbols found, need {_MIN_SYMBOLS}")
+            nu, gain, dc = fit(sel, ideal, nu, dc)
+    z, dc_reg, u, kk = z[sel], dc_reg[sel], u[sel], idx[sel]
     meas = (z - dc * dc_reg) / (gain * np.exp(2j * np.pi * nu * kk))
     err = meas - ideal
     ref_rms = math.sqrt(float(np.mean(np.abs(ideal) ** 2)))
