@@ -65,7 +65,7 @@ def bench_tone(rng: np.random.Generator) -> xr.DataArray:
     fs, n, fc = 1e6, 2**19, 2.4415e9
     tone_offset, tone_amp, tone_phase = 125e3, 0.5, 0.4
     spur_offset, spur_amp = -287.5e3, 10 ** (-60 / 20)
-    noise_dbfs_hz = -105.0
+    noise_dbfs_hz = -120.0
     true = {
         "tone_offset_hz": tone_offset,
         "tone_frequency_hz": fc + tone_offset,
@@ -77,8 +77,8 @@ def bench_tone(rng: np.random.Generator) -> xr.DataArray:
         "dc_q": -0.007,
         "gain_imbalance_db": 0.9,
         "phase_skew_deg": 2.5,
-        "phase_noise_offsets_hz": [1e3, 10e3, 100e3],
-        "phase_noise_dbc_hz": [-85.0, -95.0, -115.0],
+        "phase_noise_offsets_hz": [1e3, 10e3, 100e3, 400e3],
+        "phase_noise_dbc_hz": [-80.0, -90.0, -105.0, -135.0],
     }
     true["image_rejection_db"] = float(
         impairments.image_rejection(true["gain_imbalance_db"], true["phase_skew_deg"]))
