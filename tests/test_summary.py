@@ -91,6 +91,9 @@ def test_multichannel_equals_per_channel():
         s1 = quadkit.summarize(one)
         for name in ("mean_power_dbfs", "peak_power_dbfs", "noise_floor_dbfs_hz"):
             assert float(s[name][ch]) == pytest.approx(float(s1[name]), abs=1e-6)
+        tones = [t for t in quadkit.to_json(s)["tones"] if t["channel"] == ch]
+        alone = quadkit.to_json(s1)["tones"]
+        assert [t["offset_hz"] for t in tones] == pytest.approx([t["offset_hz"] for t in alone])
 
 
 def test_lazy_equals_eager():

@@ -95,8 +95,9 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
     tones = data.get("tones", [])
     out.append(f"  tones ({len(tones)})")
     for t in tones:
+        where = f"  channel {t['channel']}" if "channel" in t else ""
         out.append(f"    {t['frequency_hz'] / 1e6:16.6f} MHz  offset {t['offset_hz'] / 1e3:+12.3f} kHz"
-                   f"  {t['power_dbfs']:8.2f} dBFS")
+                   f"  {t['power_dbfs']:8.2f} dBFS{where}")
     if "modulation" in data:
         out.append(f"  modulation ({args.scheme}, {args.symbol_rate:g} Bd)")
         units = {k: summary[f"modulation_{k}"].attrs.get("units", "") for k in data["modulation"]}

@@ -113,7 +113,7 @@ def summarize(
     xarray.Dataset
         The scalar figures of :data:`FIGURES` (a ``channel`` dim for multi-channel captures),
         the tone table along ``tone`` (``tone_frequency_hz``, ``tone_offset_hz``,
-        ``tone_power_dbfs``), and ``attrs["warnings"]``: plain sentences, most serious first.
+        ``tone_power_dbfs``, and ``tone_channel`` for multi-channel captures), and ``attrs["warnings"]``: plain sentences, most serious first.
         IQ-imbalance figures of a real capture are NaN (``null`` in JSON) with a warning.
 
     Examples
@@ -254,13 +254,15 @@ def summarize(
         data_vars[name] = quantity(var, units, long_name)
     if tones is not None and "tone" in tones.dims:
         t = tones
-        if "channel" in t.dims:  # the table lists the first channel's tones
-            t = t.isel(channel=0)
         for name in ("frequency_hz", "offset_hz", "power_dbfs"):
             v = t[name]
             data_vars[f"tone_{name}"] = quantity(
-                v.drop_vars([c for c in v.coords if c != "tone"]),
+                v.drop_vars(list(v.coords)),
                 v.attrs.get("units", ""), "tone " + v.attrs.get("long_name", name))
+        if "channel" in t.coords:  # multi-channel: each tone names its channel
+            data_vars["tone_channel"] = quantity(
+                xr.DataArray(np.asarray(t["channel"].values), dims="tone"), "1",
+                "channel the tone was found in")
     else:
         for name, units in (("frequency_hz", "Hz"), ("offset_hz", "Hz"), ("power_dbfs", "dBFS")):
             data_vars[f"tone_{name}"] = quantity(np.zeros(0), units, f"tone {name}", dims="tone")
