@@ -79,7 +79,8 @@ def read(path: str | os.PathLike[str], **overrides: Any) -> xr.DataArray:
     >>> import tempfile, pathlib, quadkit
     >>> folder = pathlib.Path(tempfile.mkdtemp())
     >>> cap = quadkit.synth.tone(250.0, sample_rate=1e3, n_samples=4)
-    >>> quadkit.io.write(cap, folder / "tone.sigmf-meta")
+    >>> quadkit.io.write(cap, folder / "tone.sigmf-data").name
+    'tone.sigmf-meta'
     >>> quadkit.io.read(folder / "tone.sigmf-meta").values.round(3)
     array([ 1.+0.j,  0.+1.j, -1.+0.j, -0.-1.j], dtype=complex64)
     >>> quadkit.io.read(folder / "tone.sigmf-data", chunks=2).chunks
@@ -102,11 +103,11 @@ def read(path: str | os.PathLike[str], **overrides: Any) -> xr.DataArray:
             "npy": read_npy}[kind](path, **overrides)
 
 
-def write(cap: xr.DataArray, path: str | os.PathLike[str], **options: Any) -> None:
+def write(cap: xr.DataArray, path: str | os.PathLike[str], **options: Any) -> Path:
     """Write a capture, choosing the writer by extension (the same table as :func:`read`).
 
     Options go to the writer: ``overwrite=`` for all, ``dtype=`` for SigMF, WAV and raw
-    (required for raw).
+    (required for raw). Returns the path written (for SigMF the ``.sigmf-meta`` file).
     """
     kind = _kind(path)
     if kind == "raw" and "dtype" not in options:
@@ -114,4 +115,4 @@ def write(cap: xr.DataArray, path: str | os.PathLike[str], **options: Any) -> No
                            "samples, which needs dtype= (e.g. 'ci16_le'); or use .sigmf-meta")
     writer = {"sigmf": write_sigmf, "wav": write_wav, "netcdf": write_netcdf,
               "zarr": write_zarr, "npy": write_npy, "raw": write_raw}[kind]
-    writer(cap, path, **options)
+    return writer(cap, path, **options)

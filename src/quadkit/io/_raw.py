@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -114,21 +115,22 @@ def write_raw(
     *,
     dtype: str,
     overwrite: bool = False,
-) -> None:
+) -> Path:
     """Write the samples alone, interleaved, in the SigMF-named format ``dtype``.
 
     Channels of a ``("channel", "time")`` capture are interleaved sample by sample. No
     metadata is stored: keep the sample rate and centre frequency yourself (or write SigMF).
     Integer formats scale full scale 1.0 to the integer full scale, round half to even and
     clip. The file appears only when complete; an existing one is replaced only with
-    ``overwrite=True``. A lazy capture is written chunk by chunk.
+    ``overwrite=True``. A lazy capture is written chunk by chunk. Returns the path written.
 
     Examples
     --------
     >>> import tempfile, pathlib, quadkit
     >>> cap = quadkit.capture([1 + 2j, -3 - 4j], sample_rate=1e3)
     >>> path = pathlib.Path(tempfile.mkdtemp()) / "two.cf32"
-    >>> quadkit.io.write_raw(cap, path, dtype="cf32_le")
+    >>> quadkit.io.write_raw(cap, path, dtype="cf32_le").name
+    'two.cf32'
     >>> path.read_bytes().hex()
     '0000803f00000040000040c0000080c0'
     """
@@ -141,6 +143,7 @@ def write_raw(
     with atomic_path(path, overwrite=overwrite) as tmp, open(tmp, "wb") as fh:
         for block in iter_blocks(cap):
             fh.write(encode(block, fmt).tobytes())
+    return Path(path)
 
 
 def _npy_header(p: Any) -> tuple[tuple[int, ...], bool, np.dtype, int]:
@@ -222,17 +225,18 @@ def read_npy(
     return capture(data, sample_rate=fs, center_frequency=fc, **metadata)
 
 
-def write_npy(cap: xr.DataArray, path: str | os.PathLike[str], *, overwrite: bool = False) -> None:
-    """Write the samples (not the metadata) as a ``.npy`` array, atomically.
+def write_npy(cap: xr.DataArray, path: str | os.PathLike[str], *, overwrite: bool = False) -> Path:
+    """Write the samples (not the metadata) as a ``.npy`` array, atomically; return the path.
 
     Examples
     --------
     >>> import tempfile, pathlib, numpy as np, quadkit
     >>> cap = quadkit.capture([1j, 2], sample_rate=1e3)
     >>> path = pathlib.Path(tempfile.mkdtemp()) / "x.npy"
-    >>> quadkit.io.write_npy(cap, path)
+    >>> _ = quadkit.io.write_npy(cap, path)
     >>> np.load(path)
     array([0.+1.j, 2.+0.j], dtype=complex64)
     """
     with atomic_path(path, overwrite=overwrite) as tmp, open(tmp, "wb") as fh:
         np.save(fh, np.asarray(cap.values), allow_pickle=False)
+    return Path(path)

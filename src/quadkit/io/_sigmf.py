@@ -206,7 +206,7 @@ def read_sigmf(
     >>> cap = quadkit.synth.tone(1e3, sample_rate=8e3, n_samples=8, amplitude=0.5,
     ...                          center_frequency=433.9e6)
     >>> stem = pathlib.Path(tempfile.mkdtemp()) / "bench_tone"
-    >>> quadkit.io.write_sigmf(cap, stem, dtype="ci16_le")
+    >>> _ = quadkit.io.write_sigmf(cap, stem, dtype="ci16_le")
     >>> back = quadkit.io.read_sigmf(stem.with_suffix(".sigmf-meta"))
     >>> back.attrs["center_frequency"], back.attrs["file_datatype"], back.dtype
     (433900000.0, 'ci16_le', dtype('complex64'))
@@ -439,7 +439,7 @@ def write_sigmf(
     *,
     overwrite: bool = False,
     dtype: str | None = None,
-) -> None:
+) -> Path:
     """Write a capture as a SigMF recording (``.sigmf-meta`` + ``.sigmf-data``, or archive).
 
     Parameters
@@ -459,6 +459,11 @@ def write_sigmf(
         formats map full scale 1.0 to the integer full scale (ci16: times 32768), round half
         to even and clip (+1.0 becomes 32767).
 
+    Returns
+    -------
+    pathlib.Path
+        The ``.sigmf-meta`` file written (or the archive).
+
     Notes
     -----
     Several channels are written with ``core:num_channels``, interleaved sample by sample
@@ -472,7 +477,8 @@ def write_sigmf(
     >>> import json, tempfile, pathlib, quadkit
     >>> cap = quadkit.capture([1 + 2j, -3 - 4j], sample_rate=1e6, center_frequency=868e6)
     >>> stem = pathlib.Path(tempfile.mkdtemp()) / "pair"
-    >>> quadkit.io.write_sigmf(cap, stem)
+    >>> quadkit.io.write_sigmf(cap, stem).name
+    'pair.sigmf-meta'
     >>> meta = json.loads(stem.with_suffix(".sigmf-meta").read_text())
     >>> meta["global"]["core:datatype"], meta["captures"][0]["core:frequency"]
     ('cf32_le', 868000000.0)
@@ -489,7 +495,7 @@ def write_sigmf(
     doc = _documents(cap, fmt.name, meta_path)
     if archive:
         _write_archive(cap, meta_path, fmt, doc, overwrite=overwrite)
-        return
+        return meta_path
     # Both targets are checked before either is written.
     check_writable(meta_path, overwrite=overwrite)
     check_writable(data_path, overwrite=overwrite)
@@ -504,6 +510,7 @@ def write_sigmf(
         doc["global"]["core:sha512"] = h.hexdigest()
         tmp_meta.write_text(json.dumps(doc, indent=2, allow_nan=False) + "\n")
     # leaving the block renames the data file first, then the metadata
+    return meta_path
 
 
 def _write_archive(cap: xr.DataArray, path: Path, fmt: Any, doc: dict, *,

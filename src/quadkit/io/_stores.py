@@ -124,19 +124,19 @@ def _open_chunks(chunks: Any) -> Any:
 
 
 def write_netcdf(cap: xr.DataArray, path: str | os.PathLike[str], *,
-                 overwrite: bool = False) -> None:
+                 overwrite: bool = False) -> Path:
     """Write a capture as netCDF-4 (real and imaginary parts as two float variables).
 
     Bit-exact for complex64 and complex128; attrs restored by :func:`read_netcdf`. Written
     under a temporary name and renamed; an existing file is replaced only with
-    ``overwrite=True``.
+    ``overwrite=True``. Returns the path written.
 
     Examples
     --------
     >>> import tempfile, pathlib, quadkit
     >>> cap = quadkit.capture([1 + 2j, -3 - 4j], sample_rate=1e6, label="bench A")
     >>> path = pathlib.Path(tempfile.mkdtemp()) / "pair.nc"
-    >>> quadkit.io.write_netcdf(cap, path)
+    >>> _ = quadkit.io.write_netcdf(cap, path)
     >>> back = quadkit.io.read_netcdf(path)
     >>> back.values, back.attrs["label"]
     (array([ 1.+2.j, -3.-4.j], dtype=complex64), 'bench A')
@@ -144,6 +144,7 @@ def write_netcdf(cap: xr.DataArray, path: str | os.PathLike[str], *,
     ds = _to_dataset(cap, split_complex=True)
     with atomic_path(path, overwrite=overwrite) as tmp:
         ds.to_netcdf(tmp, format="NETCDF4" if _has_netcdf4() else None)
+    return Path(path)
 
 
 def _has_netcdf4() -> bool:
@@ -179,15 +180,17 @@ def read_netcdf(path: str | os.PathLike[str], *, chunks: Any = None,
 
 
 def write_zarr(cap: xr.DataArray, path: str | os.PathLike[str], *,
-               overwrite: bool = False) -> None:
+               overwrite: bool = False) -> Path:
     """Write a capture as a Zarr store (a folder); complex samples stored as complex.
+
+    Returns the path written.
 
     Examples
     --------
     >>> import tempfile, pathlib, quadkit
     >>> cap = quadkit.capture([1 + 2j, -3 - 4j], sample_rate=1e6)
     >>> path = pathlib.Path(tempfile.mkdtemp()) / "pair.zarr"
-    >>> quadkit.io.write_zarr(cap, path)
+    >>> _ = quadkit.io.write_zarr(cap, path)
     >>> quadkit.io.read_zarr(path).values
     array([ 1.+2.j, -3.-4.j], dtype=complex64)
     """
@@ -195,6 +198,7 @@ def write_zarr(cap: xr.DataArray, path: str | os.PathLike[str], *,
     with atomic_path(path, overwrite=overwrite) as tmp, warnings.catch_warnings():
         warnings.simplefilter("ignore")
         ds.to_zarr(tmp, mode="w-", consolidated=False)
+    return Path(path)
 
 
 def read_zarr(path: str | os.PathLike[str], *, chunks: Any = None,

@@ -140,7 +140,7 @@ def write_wav(
     *,
     dtype: Literal["int16", "int32", "float32"] = "int16",
     overwrite: bool = False,
-) -> None:
+) -> Path:
     """Write a capture as WAV: complex as two channels (I, Q), real as one.
 
     A ``("channel", "time")`` capture writes one WAV channel per real channel, or an I and a
@@ -148,14 +148,15 @@ def write_wav(
     rate in Hz: a capture at a non-integer rate raises ``CaptureError`` (resample it or use
     SigMF); the centre frequency and other metadata are not stored. ``int16``/``int32`` map
     full scale 1.0 to 32768 / 2**31 (rounded, clipped: +1.0 becomes 32767). The file appears
-    only when complete; an existing one is replaced only with ``overwrite=True``.
+    only when complete; an existing one is replaced only with ``overwrite=True``. Returns the
+    path written.
 
     Examples
     --------
     >>> import tempfile, pathlib, scipy.io.wavfile, quadkit
     >>> cap = quadkit.capture([0.5 - 0.25j, 1j], sample_rate=48000)
     >>> path = pathlib.Path(tempfile.mkdtemp()) / "iq.wav"
-    >>> quadkit.io.write_wav(cap, path)
+    >>> _ = quadkit.io.write_wav(cap, path)
     >>> scipy.io.wavfile.read(path)
     (48000, array([[16384, -8192],
            [    0, 32767]], dtype=int16))
@@ -186,3 +187,4 @@ def write_wav(
             fh.write(encode(block, fmt).tobytes())
         if data_bytes & 1:
             fh.write(b"\0")
+    return Path(path)
