@@ -815,16 +815,22 @@ def _ideal_points(ideal: Any) -> np.ndarray | None:
 
 def _symbols_from_result(res: xr.Dataset) -> tuple[xr.DataArray, xr.DataArray | None]:
     """(received, ideal-per-symbol or None) from a modulation result."""
-    rx_key = next((k for k in ("symbols", "received", "received_symbols", "rx_symbols")
+    rx_key = next((k for k in ("measured_symbol", "symbols", "received", "received_symbol")
                    if k in res.variables), None)
     if rx_key is None:
         raise ValueError(
             "constellation_plot: the result holds no per-symbol data (expected a variable "
             "'symbols' or 'received' along a 'symbol' dim)"
         )
-    ideal_key = next((k for k in ("ideal", "decisions", "reference", "ideal_symbols",
-                                  "decided") if k in res.variables), None)
+    ideal_key = next((k for k in ("ideal_symbol", "ideal", "decisions", "reference")
+                      if k in res.variables), None)
     return res[rx_key], (res[ideal_key] if ideal_key else None)
+
+
+def _scheme_of(res: xr.Dataset) -> str | None:
+    """The modulation scheme named in a result's attrs, if any."""
+    value = res.attrs.get("scheme") or res.attrs.get("modulation_scheme")
+    return str(value) if value else None
 
 
 def constellation_plot(
@@ -875,10 +881,13 @@ def constellation_plot(
     per_symbol_ideal = None
     if isinstance(obj, xr.Dataset):
         rx, per_symbol_ideal = _symbols_from_result(obj)
-        if ideal_pts is None and per_symbol_ideal is not None:
-            ideal_pts = np.unique(np.round(np.asarray(per_symbol_ideal.values).ravel(), 9))
+        if ideal_pts is None and _scheme_of(obj):
+            ideal_pts = _ideal_points(_scheme_of(obj))
+        elif ideal_pts is None and per_symbol_ideal is not None:
+            v = np.asarray(per_symbol_ideal.values).ravel()
+            ideal_pts = np.unique(np.round(v[np.isfinite(v)], 9))
         source = rx
-        scheme = obj.attrs.get("scheme")
+        scheme = _scheme_of(obj)
     elif isinstance(obj, xr.DataArray) and "time" in obj.dims:
         source = obj
         scheme = None
@@ -902,6 +911,9 @@ def constellation_plot(
         if per_symbol_ideal is not None:
             ref = np.asarray(_select(per_symbol_ideal, ch).isel(
                 {along: slice(None, None, step)}).values).ravel()
+            ok = np.isfinite(rx) & np.isfinite(ref)  # several channels: NaN padding
+            rx, ref = rx[ok], ref[ok]
+            n = int(np.isfinite(np.asarray(rx_all.values)).sum())
         elif ideal_pts is not None and ideal_pts.size:
             ref = ideal_pts[np.argmin(np.abs(rx[:, None] - ideal_pts[None, :]), axis=1)]
         ttl = title
@@ -909,6 +921,10 @@ def constellation_plot(
             ttl = "Constellation"
             if scheme:
                 ttl += f" — {_text(scheme)}"
+            if isinstance(obj, xr.Dataset) and "evm_rms_percent" in obj:
+                evm = _select(obj["evm_rms_percent"], ch) if ch is not None and \
+                    "channel" in obj["evm_rms_percent"].dims else obj["evm_rms_percent"]
+                ttl += f", EVM {float(evm):.2f} % rms"
             ttl += f" · {rx.size:,} of {n:,} points" if step > 1 else f" · {n:,} points"
             if ch is not None:
                 ttl += f" · channel {ch}"
