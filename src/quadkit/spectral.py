@@ -202,6 +202,7 @@ def _segment_powers(x: np.ndarray, win: np.ndarray, step: int, mode: str,
         return out
     batch = max(1, _BATCH_SAMPLES // nper)
     buf = np.empty((min(batch, nseg), nper), dtype=rdt if real else cdt)
+    pbuf = np.empty((min(batch, nseg), nfreq), dtype=rdt)
     for c in range(C):
         view = sliding_window_view(x[c], nper)[::step][:nseg]
         for i in range(0, nseg, batch):
@@ -212,13 +213,15 @@ def _segment_powers(x: np.ndarray, win: np.ndarray, step: int, mode: str,
                 X = _fft.rfft(b, axis=-1, workers=workers)
             else:
                 X = _fft.fft(b, axis=-1, workers=workers, overwrite_x=True)
-            r = X.view(rdt).reshape(X.shape[0], nfreq, 2)
+            pw = pbuf[: seg.shape[0]]
+            np.abs(X, out=pw)
+            np.square(pw, out=pw)
             if mode == "sum":
-                out[c] += np.einsum("ijk,ijk->j", r, r)
+                out[c] += pw.sum(axis=0)
             elif mode == "max":
-                np.maximum(out[c], np.einsum("ijk,ijk->ij", r, r).max(axis=0), out=out[c])
+                np.maximum(out[c], pw.max(axis=0), out=out[c])
             else:
-                out[c, i:i + seg.shape[0]] = np.einsum("ijk,ijk->ij", r, r)
+                out[c, i:i + seg.shape[0]] = pw
     return out
 
 
@@ -1318,7 +1321,9 @@ def tone_quality(
         if circular:
             dist = (dist + nf / 2) % nf - nf / 2
         leak = p1_rough * np.abs(_window_dtft(window, nper, dist)) ** 2 / (fs * sumw2)
-        used |= leak > 0.01 * rough
+        # (Within an eighth of the band, so that a noiseless capture keeps noise bins.)
+        skirt = (leak > 0.01 * rough) & (np.abs(dist) < nf / 8)
+        leak[idx1] = 0.0
         harm = []
         orders = range(2, n_harmonics + 2)
         signs = (1,) if onesided else (1, -1)
@@ -1332,7 +1337,7 @@ def tone_quality(
                     continue
                 used[idx] = True
                 harm.append((idx, frac))
-        free = ~used
+        free = ~used & ~skirt
         if not np.any(free):
             raise MeasurementError("tone_quality: no noise bins left; use a longer nperseg")
         n0 = float(np.mean(p[free]))
@@ -1342,15 +1347,18 @@ def tone_quality(
                 "tone_quality: no tone stands above the noise; check the capture or give "
                 "fundamental_hz"
             )
-        ph = [max(float((np.sum(p[i]) - n0 * i.size) * df / fr), 0.0) for i, fr in harm]
+        # Background under a component: the noise plus the fundamental's leakage there.
+        back = n0 + leak * (p1 / p1_rough if p1_rough > 0 else 0.0)
+        ph = [max(float(np.sum(p[i] - back[i]) * df / fr), 0.0) for i, fr in harm]
         p_harm = float(sum(ph))
         p_noise = n0 * band
-        # Largest remaining spur: its main lobe summed like a component.
-        kmax = int(np.flatnonzero(free)[np.argmax(p[free])])
+        # Largest remaining spur (above its background): its main lobe summed like a component.
+        rest = np.flatnonzero(~used)
+        kmax = int(rest[np.argmax(p[rest] - back[rest])])
         idx_s = np.arange(kmax - L, kmax + L + 1)
         idx_s = idx_s % nf if circular else idx_s[(idx_s >= 0) & (idx_s < nf)]
-        idx_s = idx_s[free[idx_s]]
-        spur = max(float((np.sum(p[idx_s]) - n0 * idx_s.size) * df), 0.0)
+        idx_s = idx_s[~used[idx_s]]
+        spur = max(float(np.sum(p[idx_s] - back[idx_s]) * df), 0.0)
         f_spur = off[kmax]
         if ph and max(ph) >= spur:
             j = int(np.argmax(ph))
