@@ -321,9 +321,8 @@ def read_sigmf(
 
     data = load_samples(data_path, offset=data_offset, count=frames, datatype=fmt.name,
                         channels=channels, chunks=chunks)
-    fs_attr = attrs.pop("sample_rate", None)  # a quadkit:sample_rate would be a duplicate
-    del fs_attr
-    attrs.pop("center_frequency", None)
+    for key in ("sample_rate", "center_frequency"):  # SigMF's own fields win
+        attrs.pop(key, None)
     cap = capture(data, sample_rate=fs, center_frequency=center, **attrs)
     return apply_overrides(cap, overrides, source)
 

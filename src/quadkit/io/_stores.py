@@ -124,12 +124,16 @@ def _open_chunks(chunks: Any) -> Any:
 
 
 def write_netcdf(cap: xr.DataArray, path: str | os.PathLike[str], *,
-                 overwrite: bool = False) -> Path:
-    """Write a capture as netCDF-4 (real and imaginary parts as two float variables).
+                 overwrite: bool = False, engine: str | None = None) -> Path:
+    """Write a capture as netCDF (real and imaginary parts as two float variables).
 
     Bit-exact for complex64 and complex128; attrs restored by :func:`read_netcdf`. Written
     under a temporary name and renamed; an existing file is replaced only with
     ``overwrite=True``. Returns the path written.
+
+    ``engine``: the xarray netCDF backend. Default: netCDF-4 through ``netCDF4`` or
+    ``h5netcdf`` (with ``h5py``) when installed, else netCDF-3 (64-bit offsets) through
+    scipy, which holds float32/float64 parts just as exactly.
 
     Examples
     --------
@@ -142,19 +146,24 @@ def write_netcdf(cap: xr.DataArray, path: str | os.PathLike[str], *,
     (array([ 1.+2.j, -3.-4.j], dtype=complex64), 'bench A')
     """
     ds = _to_dataset(cap, split_complex=True)
+    engine = engine or _netcdf_engine()
+    fmt = "NETCDF3_64BIT" if engine == "scipy" else "NETCDF4"
+    if engine == "scipy" and "channel" in ds.coords:
+        ds = ds.assign_coords(channel=ds["channel"].astype(np.int32)) \
+            if ds["channel"].dtype.kind in "iu" else ds
     with atomic_path(path, overwrite=overwrite) as tmp:
-        ds.to_netcdf(tmp, format="NETCDF4" if _has_netcdf4() else None)
+        ds.to_netcdf(tmp, engine=engine, format=fmt)
     return Path(path)
 
 
-def _has_netcdf4() -> bool:
-    for name in ("netCDF4", "h5netcdf"):
-        try:
-            __import__(name)
-            return True
-        except ImportError:
-            continue
-    return False
+def _netcdf_engine() -> str:
+    import importlib.util
+
+    if importlib.util.find_spec("netCDF4"):
+        return "netcdf4"
+    if importlib.util.find_spec("h5netcdf") and importlib.util.find_spec("h5py"):
+        return "h5netcdf"
+    return "scipy"
 
 
 def read_netcdf(path: str | os.PathLike[str], *, chunks: Any = None,
