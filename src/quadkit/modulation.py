@@ -270,6 +270,13 @@ def _synthesize(symbols: np.ndarray, sps: float, beta: float, span: int, n_out: 
                 first: float) -> np.ndarray:
     """sum_k a_k h(n/sps - first - k) for n < n_out (exact for any real sps)."""
     half = span / 2
+    q = round(sps)
+    if abs(sps - q) < 1e-12 and abs(first - half) < 1e-12 and span % 2 == 0:
+        # integer samples per symbol: the same sums as an upsampling FIR
+        from scipy.signal import upfirdn
+
+        taps = _rrc(np.arange(-(span * q) // 2, (span * q) // 2 + 1) / q, beta)
+        return upfirdn(taps, symbols, up=q)[:n_out].astype(np.complex128)
     out = np.zeros(n_out, np.complex128)
     n_taps = span + 2
     block = max(1, 2 ** 20 // n_taps)
@@ -438,16 +445,14 @@ def _mf_at(xs: np.ndarray, u: np.ndarray, sps: float, beta: float, half_span: fl
 def _tone_fit(w: np.ndarray, center: float = 0.0, halfwidth: float = 0.5) -> tuple[float, complex, float]:
     """Maximum-likelihood frequency of one complex tone in ``w`` (cycles per sample).
 
-    Periodogram peak within ``center +- halfwidth`` (8x zero padding), refined on the
-    continuous periodogram (Rife & Boorstyn 1974, memory). Returns the frequency, the complex
+    Periodogram peak within ``center +- halfwidth`` (4x zero padding), refined by Newton
+    steps on the continuous periodogram (Rife & Boorstyn 1974, memory). Returns the frequency, the complex
     amplitude referred to the middle sample, and the ratio of the peak to the median of the
     periodogram in the search window (a detection statistic: about ln(n)/ln(2) for noise).
     """
-    from scipy.optimize import minimize_scalar
-
     n = w.size
     k = np.arange(n) - (n - 1) / 2
-    nfft = max(1024, 1 << int(math.ceil(math.log2(8 * n))))
+    nfft = max(1024, 1 << int(math.ceil(math.log2(4 * n))))
     spec = np.abs(np.fft.fft(w, nfft)) ** 2
     f = np.fft.fftfreq(nfft)
     dist = (f - center + 0.5) % 1.0 - 0.5
@@ -457,14 +462,23 @@ def _tone_fit(w: np.ndarray, center: float = 0.0, halfwidth: float = 0.5) -> tup
     cand = np.flatnonzero(mask)
     m = cand[np.argmax(spec[cand])]
     ratio = float(spec[m] / max(np.median(spec[cand]), 1e-300))
-
-    def neg(fr: float) -> float:
-        return -abs(np.dot(w, np.exp(-2j * np.pi * fr * k)))
-
-    step = 1.0 / nfft
-    opt = minimize_scalar(neg, bounds=(f[m] - step, f[m] + step), method="bounded",
-                          options={"xatol": 1e-6 / n})
-    fr = float(opt.x)
+    # Newton steps on P(f) = |S(f)|^2, S(f) = sum w_k exp(-j 2 pi f k), from the padded peak
+    # (within 1/8 bin, inside the concave main lobe).
+    fr = float(f[m])
+    step_max = 1.0 / nfft
+    for _ in range(4):
+        e = w * np.exp(-2j * np.pi * fr * k)
+        s0 = e.sum()
+        s1 = np.dot(e, -2j * np.pi * k)
+        s2 = np.dot(e, -(2 * np.pi * k) ** 2)
+        d1 = 2 * (np.conj(s0) * s1).real
+        d2 = 2 * (abs(s1) ** 2 + (np.conj(s0) * s2).real)
+        if not d2 < 0:
+            break
+        step = float(np.clip(-d1 / d2, -step_max, step_max))
+        fr += step
+        if abs(step) < 1e-9 / n:
+            break
     amp = complex(np.dot(w, np.exp(-2j * np.pi * fr * k)) / n)
     return fr, amp, ratio
 
@@ -574,15 +588,27 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     pts = _points(scheme)
     pi2 = scheme == "pi/2-bpsk"
     m_pow = 2 if scheme in ("bpsk", "pi/2-bpsk") else 4
-    grid = np.arange(u_lo, u_hi, sps / 4.0)
 
     def instants(sig: np.ndarray) -> np.ndarray:
         # Symbol timing from the symbol-rate line of the squared magnitude of the matched
-        # filter output at four points per symbol (Oerder & Meyr 1988, memory); it does not
-        # depend on the carrier phase.
-        r = _mf_at(sig[None, :], grid, sps, beta, _EST_SPAN / 2)[0]
-        line = np.sum(np.abs(r) ** 2 * np.exp(-2j * np.pi * np.arange(grid.size) / 4))
-        first = grid[0] - np.angle(line) / (2 * np.pi) * sps
+        # filter output (Oerder & Meyr 1988, memory); it does not depend on the carrier
+        # phase. With >= 4 samples per symbol the output at every sample (FFT convolution)
+        # holds the line without aliasing; below that, four points per symbol are computed.
+        if sps >= 4:
+            from scipy.signal import fftconvolve
+
+            half_taps = int(math.floor(_EST_SPAN / 2 * sps))
+            taps = _rrc(np.arange(-half_taps, half_taps + 1) / sps, beta) / sps
+            n0, n1 = int(math.ceil(u_lo)), int(math.floor(u_hi))
+            r = fftconvolve(sig, taps, mode="same")[n0:n1 + 1]
+            pos = np.arange(n0, n1 + 1)
+            line = np.sum(np.abs(r) ** 2 * np.exp(-2j * np.pi * pos / sps))
+            first = -np.angle(line) / (2 * np.pi) * sps
+        else:
+            grid = np.arange(u_lo, u_hi, sps / 4.0)
+            r = _mf_at(sig[None, :], grid, sps, beta, _EST_SPAN / 2)[0]
+            line = np.sum(np.abs(r) ** 2 * np.exp(-2j * np.pi * np.arange(grid.size) / 4))
+            first = grid[0] - np.angle(line) / (2 * np.pi) * sps
         k_lo = math.ceil((u_lo - first) / sps)
         k_hi = math.floor((u_hi - first) / sps)
         return first + sps * np.arange(k_lo, k_hi + 1)
@@ -662,6 +688,7 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
             f"analyze: only {max(0, i1 - i0)} symbols found, need at least {_MIN_SYMBOLS}"
         )
     sel = slice(i0, i1)
+    burst = burst or i0 + (n - i1) >= 4
     nu, gain, dc, ideal = converge(sel, nu, gain, dc, 2)
     lag = None
     if ref is not None:
@@ -879,8 +906,9 @@ def analyze(
         "method": "data-aided" if ref is not None else "decision-directed",
         "evm_definition": "rms error over rms ideal symbol (3GPP TS 38.104 / TS 38.101-2 Annex F)",
         "iq_offset_removed": "yes" if remove_iq_offset else "no",
-        "burst": ("burst detected by energy; only the burst was analysed" if all(bursts) else
-                  "no silence found; the whole capture was analysed" if not any(bursts) else
-                  "burst detected by energy in some channels only; see burst_start_s"),
+        "burst": ("burst found (energy, then symbol likelihood); only its symbols were analysed"
+                  if all(bursts) else
+                  "continuous signal; the whole capture was analysed" if not any(bursts) else
+                  "burst found in some channels only; see burst_start_s"),
     }
     return result(variables, coords=coords, attrs=attrs)
