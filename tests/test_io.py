@@ -226,7 +226,8 @@ def test_sigmf_writes_we_read(tmp_path):
                                           sigmf.FREQ_UPPER_EDGE_KEY: 915.1e6})
     meta.tofile(str(tmp_path / "theirs.sigmf-meta"))
     cap = qio.read_sigmf(tmp_path / "theirs")
-    np.testing.assert_array_equal(cap.values, sigmf.fromfile(str(tmp_path / "theirs")).read_samples())
+    theirs = sigmf.fromfile(str(tmp_path / "theirs")).read_samples()
+    np.testing.assert_array_equal(cap.values, theirs)
     assert cap.attrs["sample_rate"] == 1.0e6
     assert cap.attrs["center_frequency"] == 915e6
     assert cap.attrs["start_time"] == "2026-01-02T03:04:05Z"

@@ -106,7 +106,8 @@ def test_store_round_trip_bit_exact(tmp_path, kind, channels):
         else _awkward_complex64()
     notes = [{"start_sample": 3, "sample_count": 4, "label": "spur", "comment": "bench"}]
     cap = quadkit.capture(x, sample_rate=3.84e6, center_frequency=1.8e9,
-                          annotations=notes, calibration_db=-20.25, start_time="2026-01-01T00:00:00Z",
+                          annotations=notes, calibration_db=-20.25,
+                          start_time="2026-01-01T00:00:00Z",
                           flag=True, note=None)
     cap = cap.isel(time=slice(5, None))  # a slice: the time of the first sample is kept
     ext = ".nc" if kind == "netcdf" else ".zarr"

@@ -16,9 +16,6 @@ import xarray as xr
 from .._capture import _check_rate, like
 from .._errors import CaptureError
 
-#: Attributes the readers set from the file's own fields (others come from the user).
-MAPPED_ATTRS = ("sample_rate", "center_frequency", "full_scale")
-
 #: Samples written per block when a capture is written in pieces.
 BLOCK_SAMPLES = 1 << 20
 
@@ -106,7 +103,7 @@ def jsonable(value: Any) -> Any:
     return value
 
 
-def json_error(path: Any, text: str, exc: json.JSONDecodeError) -> CaptureError:
+def json_error(path: Any, exc: json.JSONDecodeError) -> CaptureError:
     return CaptureError(
         f"{path}: malformed metadata JSON at line {exc.lineno}, column {exc.colno}: {exc.msg}"
     )

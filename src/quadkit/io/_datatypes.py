@@ -32,7 +32,9 @@ from .._errors import CaptureError
 
 __all__ = ["SampleFormat", "parse_datatype", "KNOWN_DATATYPES", "decode", "encode"]
 
-_GRAMMAR = re.compile(r"^(?P<cr>[rc])(?:(?P<wide>f32|f64|i32|i16|u32|u16)_(?P<end>le|be)|(?P<byte>[iu]8))$")
+_GRAMMAR = re.compile(
+    r"^(?P<cr>[rc])(?:(?P<wide>f32|f64|i32|i16|u32|u16)_(?P<end>le|be)|(?P<byte>[iu]8))$"
+)
 
 
 def _known() -> tuple[str, ...]:

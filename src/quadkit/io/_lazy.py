@@ -8,7 +8,6 @@ building it reads nothing from the file (only its size is looked up).
 
 from __future__ import annotations
 
-import math
 import os
 from collections.abc import Sequence
 from typing import Any
@@ -151,10 +150,3 @@ def whole_samples(path: str, n_bytes: int, frame_bytes: int, *, what: str) -> in
             "(wrong datatype, channel count or header offset?)"
         )
     return frames
-
-
-def isfinite_number(value: Any) -> bool:
-    try:
-        return math.isfinite(float(value))
-    except (TypeError, ValueError):
-        return False

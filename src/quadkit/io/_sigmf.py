@@ -113,7 +113,7 @@ def _parse_meta(text: bytes, source: Any) -> dict:
     except UnicodeDecodeError as exc:
         raise CaptureError(f"{source}: metadata is not UTF-8 text (byte {exc.start})") from None
     except json.JSONDecodeError as exc:
-        raise json_error(source, "", exc) from None
+        raise json_error(source, exc) from None
     if not isinstance(doc, dict) or not isinstance(doc.get("global"), dict):
         raise CaptureError(f"{source}: SigMF metadata must be a JSON object with a 'global' "
                            "object; none found")

@@ -12,7 +12,6 @@ import struct
 from pathlib import Path
 from typing import Any, Literal
 
-import numpy as np
 import xarray as xr
 
 from .._capture import capture
