@@ -15,6 +15,7 @@ import xarray as xr
 
 # Order matters only for discovery; names must not repeat across modules (tested).
 _MODULES = (
+    "quadkit.io",
     "quadkit.synth",
     "quadkit.mixing",
     "quadkit.decimation",
