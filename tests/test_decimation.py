@@ -473,16 +473,23 @@ def test_lazy_channel_chunks_and_time_never_one_chunk():
     np.testing.assert_allclose(out.values, decimate(cap, 4).values, atol=1e-6)
 
 
-def test_distributed_local_cluster():
+def test_distributed_local_cluster_and_tasks_pickle():
+    import pickle
+
     distributed = pytest.importorskip("distributed")
     x = noise(30000, channels=2)
     cap = quadkit.capture(x, sample_rate=1e6)
     lz = lazy(cap, (7000, 7000, 7000, 9000))
-    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=True,
+    dec = decimate(lz, 9)
+    ext = extract_channel(lz, 100e3, 50e3)
+    # the graphs hold module-level functions and plain data only: they pickle (pickle, not
+    # cloudpickle), as worker processes need
+    again = pickle.loads(pickle.dumps(ext.data))
+    np.testing.assert_allclose(again.compute(scheduler="sync"),
+                               extract_channel(cap, 100e3, 50e3).values, atol=1e-5)
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
                                   dashboard_address=None) as cluster, \
             distributed.Client(cluster) as client:
-        dec = decimate(lz, 9)
-        ext = extract_channel(lz, 100e3, 50e3)
         got_dec, got_ext = client.compute([dec.data, ext.data], sync=True)
     np.testing.assert_allclose(got_dec, decimate(cap, 9).values, atol=1e-5)
     np.testing.assert_allclose(got_ext, extract_channel(cap, 100e3, 50e3).values, atol=1e-5)
@@ -493,3 +500,27 @@ def test_accessor_forwards():
     np.testing.assert_array_equal(cap.qk.decimate(4).values, decimate(cap, 4).values)
     np.testing.assert_array_equal(cap.qk.extract_channel(1e5, 5e4).values,
                                   extract_channel(cap, 1e5, 5e4).values)
+
+
+def test_annotations_and_segments_follow_the_rate():
+    ann = [{"start_sample": 1000, "sample_count": 4000, "label": "burst"}]
+    seg = [{"start_sample": 0, "center_frequency": 1e9}, {"start_sample": 6000,
+                                                          "center_frequency": 1.1e9}]
+    cap = quadkit.capture(noise(10000), sample_rate=1e6, annotations=ann, segments=seg)
+    y = decimate(cap, 4)
+    assert y.attrs["annotations"] == [{"start_sample": 250, "sample_count": 1000,
+                                       "label": "burst"}]
+    assert [s["start_sample"] for s in y.attrs["segments"]] == [0, 1500]
+    assert cap.attrs["annotations"][0]["start_sample"] == 1000  # input untouched
+    r = resample(cap, 1e6 * 5 / 12)
+    assert r.attrs["annotations"][0]["start_sample"] == round(1000 * 5 / 12)
+
+
+def test_lazy_small_chunks_are_merged_for_long_filters():
+    x = noise(200_000)
+    cap = quadkit.capture(x, sample_rate=1e6)
+    lz = lazy(cap, (1000,) * 200)
+    out = decimate(lz, 100)
+    # the 3-stage chain reaches ~2 ms each side: output chunks are not single samples
+    assert min(out.data.chunks[-1]) > 1 and len(out.data.chunks[-1]) > 1
+    np.testing.assert_allclose(out.values, decimate(cap, 100).values, atol=1e-5)

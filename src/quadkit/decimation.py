@@ -16,7 +16,8 @@ Samples outside the capture count as zero. Output samples whose filter reached p
 recorded samples are *unsettled*: their counts at the start and the end are stored in the
 attrs ``unsettled_start`` and ``unsettled_end`` of the result (a chain of operations adds up).
 ``result.isel(time=slice(result.attrs["unsettled_start"], result.sizes["time"] -
-result.attrs["unsettled_end"]))`` keeps only fully settled samples.
+result.attrs["unsettled_end"]))`` keeps only fully settled samples. Sample indices in the
+``annotations`` and ``segments`` attrs are converted to the new rate.
 
 Implementation: overlap-save FFT convolution in the input's precision (complex64 stays
 complex64), with the rate change done in the frequency domain (the spectrum of the
@@ -271,7 +272,8 @@ def _frame_plan(st: _Stage) -> tuple[int, int, int]:
     p, q = st.up, st.down
     g = math.gcd(p, q)
     qg = q // g
-    want = max(8192, 8 * (st.taps.size // p + q + 1))
+    # a frame spans at least 8 filter lengths (overlap <= 1/8) and 8192 output-domain samples
+    want = max(_ceil_div(8192, p), 8 * (st.taps.size // p + q + 1))
     nf = qg * _fft.next_fast_len(_ceil_div(want, qg))
     # largest hop: a multiple of qg whose outputs fit in the valid part of a frame
     m = p * nf
@@ -321,7 +323,7 @@ def _run_stage(x: np.ndarray, a: int, ex_lo: int, ex_hi: int, st: _Stage,
     spec = _spectrum(st, nf, r, cdt)
     k_out = p * nf // q
     lead = x.shape[:-1]
-    batch = max(1, (1 << 19) // nf)
+    batch = max(1, (1 << 19) // (p * nf))  # about 4 MiB of spectra at a time
 
     def run(f0: int) -> None:
         f1 = min(n_frames, f0 + batch)
@@ -424,6 +426,17 @@ def _apply(cap: xr.DataArray, stages: Sequence[_Stage], sample_rate: float,
         total_down = math.prod(st.down for st in stages)
         obounds = sorted({min(j1, max(j0, _ceil_div(int(b) * total_up, total_down)))
                           for b in bounds} | {j0, j1})
+        # an output chunk reads its span plus the chain's reach on both sides; merge output
+        # chunks shorter than that reach so the halos cost at most about as much as the data
+        h_lo, h_hi = _chain_needs(stages, 0, 1)
+        min_len = max(1, (h_hi - h_lo) * total_up // total_down)
+        merged = [obounds[0]]
+        for ob in obounds[1:-1]:
+            if ob - merged[-1] >= min_len:
+                merged.append(ob)
+        if len(merged) > 1 and obounds[-1] - merged[-1] < min_len:
+            merged.pop()
+        obounds = merged + [obounds[-1]]
         pieces = []
         for o1, o2 in zip(obounds[:-1], obounds[1:]):
             if o2 <= o1:
@@ -451,8 +464,32 @@ def _apply(cap: xr.DataArray, stages: Sequence[_Stage], sample_rate: float,
     n_out = j1 - j0
     un_start = int(min(n_out, max(0, k_lo - j0)))
     un_end = int(min(n_out - un_start, max(0, j1 - k_hi)))
+    ratio = Fraction(math.prod(st.up for st in stages), math.prod(st.down for st in stages))
+    attr_updates.update(_reindexed(cap.attrs, ratio))
     return _capture.like(cap, out, start_index=j0, sample_rate=float(sample_rate),
                          unsettled_start=un_start, unsettled_end=un_end, **attr_updates)
+
+
+def _reindexed(attrs: dict, ratio: Fraction) -> dict:
+    """Annotations and segments with sample indices converted to the new rate."""
+    out = {}
+    if ratio == 1:
+        return out
+    for key, fields in (("annotations", ("start_sample", "sample_count")),
+                        ("segments", ("start_sample",))):
+        items = attrs.get(key)
+        if not isinstance(items, (list, tuple)):
+            continue
+        new = []
+        for item in items:
+            item = dict(item) if isinstance(item, dict) else item
+            if isinstance(item, dict):
+                for f in fields:
+                    if isinstance(item.get(f), (int, np.integer)):
+                        item[f] = int(math.floor(item[f] * ratio + Fraction(1, 2)))
+            new.append(item)
+        out[key] = new
+    return out
 
 
 def _workers() -> int:
