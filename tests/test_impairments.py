@@ -335,6 +335,17 @@ def test_estimate_lazy_equals_numpy_and_multichannel_equals_per_channel():
                                            "image_rejection_db"}
 
 
+def test_estimate_with_one_chunk_per_channel():
+    tones = np.stack([synth.tone(f, sample_rate=FS, n_samples=50000).values for f in (90e3, -60e3)])
+    cap = impairments.apply(synth.add_noise(cap_of(tones), snr_db=40, rng=1),
+                            gain_imbalance_db=0.3, phase_skew_deg=-2.0)
+    eager = impairments.estimate(cap)
+    chunked = impairments.estimate(_capture.like(cap, da.from_array(cap.values, chunks=(1, 7001))))
+    assert eager.attrs["method"] == chunked.attrs["method"] == "tone"
+    for name in eager.data_vars:
+        np.testing.assert_allclose(chunked[name].values, eager[name].values, rtol=1e-9, atol=1e-12)
+
+
 def test_estimate_tone_lazy_equals_numpy():
     rng = np.random.default_rng(6)
     cap = synth.add_noise(synth.tone(-150e3, sample_rate=FS, n_samples=40000, amplitude=0.3),

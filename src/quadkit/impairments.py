@@ -153,9 +153,13 @@ def _blockwise(data2d: Any, func: Callable[..., np.ndarray], out_len: int, *args
         return func(np.asarray(data2d), 0, *args)
     import dask.array as da
 
+    # channels are few: one chunk along them, so per-channel arguments line up (time keeps
+    # its chunks)
+    data2d = data2d.rechunk({0: -1})
+
     def per_chunk(x, block_info=None):
         pos0 = block_info[0]["array-location"][-1][0]
-        return func(x, pos0, *args)[:, None, :]
+        return func(x, pos0, *args).astype(np.complex128)[:, None, :]
 
     nt = len(data2d.chunks[-1])
     parts = da.map_blocks(
@@ -366,7 +370,6 @@ def _sinc_interp(x: np.ndarray, x_lo: int, t: np.ndarray) -> np.ndarray:
 def _apply_piece(x_in, pn, *, p):
     """Impair output positions p['lo'] .. p['hi']-1 from the needed slice of input samples."""
     lo, hi, ext = p["lo"], p["hi"], p["ext"]
-    n_total = p["n"]
     x_in = np.asarray(x_in, dtype=np.complex128)
     pos = np.arange(ext, hi)
     if p["eps"] != 0.0:
@@ -408,7 +411,6 @@ def _apply_piece(x_in, pn, *, p):
         step = fs_ / half
         i_m = np.clip(np.round(i_m / step), -half, half - 1) * step
         q_m = np.clip(np.round(q_m / step), -half, half - 1) * step
-    del n_total
     return (i_m + 1j * q_m).astype(p["dtype"])
 
 
@@ -1028,14 +1030,13 @@ def _find_tones(spec: np.ndarray, max_tones: int = 32) -> np.ndarray:
 
 def _mt_stat_factory(k: int):
     def stat(s: np.ndarray) -> np.ndarray:
-        # s (..., 3k + 2): [sum c- c+ (k), sum |c+|^2 (k), sum |c-|^2 (k), sum c0 n, sum n]
-        cross, pp, mm = s[..., :k], s[..., k:2 * k].real, s[..., 2 * k:3 * k].real
+        # s (..., 3k + 2): sum c- c+ (k), |c+|^2 (k), |c-|^2 (k), c0 n, n over blocks
+        cross, pp = s[..., :k], s[..., k:2 * k].real
         r = cross / pp
         w = (1.0 - r) / (1.0 + r)
         with np.errstate(divide="ignore"):
             irr = -20.0 * np.log10(np.abs(r))
         dc = s[..., 3 * k] / s[..., 3 * k + 1].real
-        del mm
         return np.concatenate([
             irr, 20.0 * np.log10(np.abs(w)), np.rad2deg(np.angle(w)),
             r.real, r.imag, dc.real[..., None], dc.imag[..., None]], axis=-1).real
@@ -1510,7 +1511,7 @@ def phase_noise(
         import dask.array as da
 
         size = max(1, round(float(np.median(x2.chunks[1])) / nperseg)) * nperseg
-        xa = x2.rechunk({1: size})
+        xa = x2.rechunk({0: -1, 1: size})
 
         def per_chunk(b, block_info=None):
             pos0 = block_info[0]["array-location"][1][0]
