@@ -162,6 +162,18 @@ def _step(lazy: bool, func: Any, *args: Any) -> Any:
     return dask.delayed(func, pure=True)(*args)
 
 
+def _matmul(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a @ b`` over a long inner axis, summed in pieces small enough that BLAS runs each
+    on one thread: a threaded BLAS call of this shape gains nothing and stalls badly when
+    the other cores are busy (dask workers, other processes)."""
+    inner = a.shape[-1]
+    step = max(512, (1 << 17) // max(1, a.shape[0] * b.shape[-1]))
+    acc = a[:, :step] @ b[:step]
+    for i in range(step, inner, step):
+        acc += a[:, i:i + step] @ b[i:i + step]
+    return acc
+
+
 def _unit_phasor(ratio: np.ndarray, index: float) -> np.ndarray:
     """exp(j 2 pi ratio index) per channel, exact also for large (half-)integer ``index``.
 
@@ -266,13 +278,12 @@ class _Moments:
         rot = np.conj(_unit_phasor(ratio, offset - centre))
         d = offset - centre  # m = d + k
         for ch in range(nchan):
-            loc = kmat[:b].T @ pv[ch]  # (3, 2): sums of k^i Re p, k^i Im p
+            loc = _matmul(kmat[:b].T, pv[ch])  # (3, 2): sums of k^i Re p, k^i Im p
             s = (loc[:, 0] + 1j * loc[:, 1]) * rot[ch]
             out[ch, 0] = s[0]
             out[ch, 1] = d * s[0] + s[1]
             out[ch, 2] = d * d * s[0] + 2 * d * s[1] + s[2]
-            flat = pv[ch].reshape(-1)
-            out[ch, 3] = flat @ flat
+            out[ch, 3] = np.square(pv[ch]).sum()
         return out
 
 
@@ -300,7 +311,7 @@ class _RealGram:
             v[:, 3] = u * v[:, 0]
             v[:, 4] = u * v[:, 1]
             v[:, 5] = x[ch]
-            out[ch] = v.T @ v
+            out[ch] = _matmul(v.T, v)
         return out
 
 
@@ -814,7 +825,7 @@ class _ComplexGram:
         u = (offset - centre + np.arange(b)) / scale
         for ch in range(nchan):
             w = np.stack([e[ch], np.ones(b), u * e[ch], x[ch].astype(np.complex128)])
-            out[ch] = np.conj(w) @ w.T
+            out[ch] = _matmul(np.conj(w), w.T)
         return out
 
 
@@ -863,7 +874,7 @@ class _FixedFit:
                                     np.ones((1, b)), x[ch][None, :].astype(np.float64)])
             else:
                 w = np.concatenate([osc, np.ones((1, b)), x[ch][None, :].astype(np.complex128)])
-            out[ch] = np.conj(w) @ w.T
+            out[ch] = _matmul(np.conj(w), w.T)
         return out
 
 
