@@ -666,6 +666,8 @@ def spectrum_plot(
                                        text_align="center"))
         fig.add_tools(models.HoverTool(renderers=[fig.select_one({"name": "peaks"})],
                                        tooltips=[("peak", "@text")]))
+        if peak_y and hasattr(fig.y_range, "range_padding"):
+            fig.y_range.range_padding = 0.2  # room for the labels above the highest peak
     _finish_legend(fig)
     return fig
 
