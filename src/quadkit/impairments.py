@@ -1235,7 +1235,7 @@ def _line_frequency(x2, *, near: np.ndarray | None = None, width: np.ndarray | N
     return fine, se
 
 
-_POWER = {"tone": 1, "cw": 1, "bpsk": 2, "qpsk": 4, "8psk": 8, "psk8": 8,
+_POWER = {"tone": 1, "cw": 1, "bpsk": 2, "pi/2-bpsk": 4, "qpsk": 4, "8psk": 8, "psk8": 8,
           "16qam": 4, "qam16": 4, "64qam": 4, "qam64": 4, "256qam": 4, "qam256": 4}
 
 
@@ -1248,8 +1248,8 @@ def frequency_offset(
     """Carrier frequency offset of a tone or of M-PSK/QAM traffic.
 
     For a tone (``modulation=None``) the frequency of the strongest line. For modulated
-    traffic the samples are raised to the M-th power (M = 2 for BPSK, 4 for QPSK and square
-    QAM, 8 for 8PSK), which strips the modulation and leaves a line at M times the carrier
+    traffic the samples are raised to the M-th power (M = 2 for BPSK, 4 for pi/2-BPSK, QPSK
+    and square QAM, 8 for 8PSK), which strips the modulation and leaves a line at M times the carrier
     offset (Mengali & D'Andrea, *Synchronization Techniques for Digital Receivers*, 1997);
     the unambiguous range is ``|offset| < fs / (2 M)``. The line's frequency comes from a
     coarse FFT of the first 2**18 samples refined by a phase fit over blocks of the whole
@@ -1260,7 +1260,8 @@ def frequency_offset(
     cap : capture
         Complex samples; numpy or dask; ``channel`` dim allowed.
     modulation : str, optional
-        ``None`` or "tone", "bpsk", "qpsk", "8psk", "16qam", "64qam", "256qam".
+        ``None`` or "tone", "bpsk", "pi/2-bpsk", "qpsk", "8psk", "16qam", "64qam", "256qam"
+        (the scheme names of :mod:`quadkit.modulation`).
     expected_offset_hz : float
         Baseband offset where the carrier should be (0 for a carrier at the centre).
 
