@@ -423,6 +423,7 @@ def _finish_complex(mom: np.ndarray, ratio: np.ndarray, n: int, centre: float, f
     noise = resid / max(n - 2, 1)
     phase_c = np.angle(y)
     phase0 = phase_c - 2 * np.pi * ((ratio * centre + 0.5) % 1.0 - 0.5)
+    # normalised periodogram |Y|^2 / (N sigma^2) = N A^2 / sigma^2, Exp(1) per bin for noise
     out = _common(amp, phase_c, phase0, ratio, resid, noise, amp ** 2, n, fs, check,
                   n * amp ** 2, func)
     return out
@@ -449,8 +450,9 @@ def _finish_real(gram: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs:
         resid[ch] = max(g[5, 5] - 2 * theta @ g[:3, 5] + theta @ g[:3, :3] @ theta, 0.0)
     noise = resid / max(n - 4, 1)
     phase0 = phase_c - 2 * np.pi * ((ratio * centre + 0.5) % 1.0 - 0.5)
+    # normalised periodogram of a real record: |sum x e^{-jwn}|^2 / (N sigma^2) = N A^2 / 4
     out = _common(amp, phase_c, phase0, ratio, resid, noise, amp ** 2 / 2, n, fs, check,
-                  n * amp ** 2 / 2, func)
+                  n * amp ** 2 / 4, func)
     out["dc"] = dc
     return out
 
@@ -472,7 +474,9 @@ def _common(amp, phase_c, phase0, ratio, resid, noise, power, n, fs, check, inte
     wrapped0 = (phase0 + np.pi) % (2 * np.pi) - np.pi
     with np.errstate(divide="ignore"):
         snr = 10 * np.log10(np.where(noise > 0, power / np.maximum(noise, 1e-300), np.inf))
+        noise_db = 10 * np.log10(noise)  # -inf if the fit is exact to rounding
     return {
+        "noise_dbfs": noise_db,
         "ratio": ratio, "amplitude": amp, "phase_centre": phase_c, "phase0": wrapped0,
         "residual_energy": resid, "noise_power": noise, "snr_db": snr,
     }
@@ -529,7 +533,7 @@ def _estimate(cap: xr.DataArray, frequency_hz: float | None, refine: bool, func:
     else:
         ratio = _search(data, lazy, n, real, hint, func)
         ratio = _refine(data, lazy, ratio, n, real)
-    check = frequency_hz is None
+    check = frequency_hz is None or refine  # a lock-in measurement needs no tone test
     if real:
         gram = _pass(data, lazy, _RealGram, ratio, centre, max(centre, 1.0))
         res = _step(lazy, _finish_real, gram, ratio, n, centre, fs, check, func)
@@ -584,7 +588,6 @@ def _tone_vars(res: Any, meta: dict, with_relative: bool) -> dict:
     amp = _field(res, "amplitude", meta)
     ph0 = _field(res, "phase0", meta)
     phc = _field(res, "phase_centre", meta)
-    noise = _field(res, "noise_power", meta)
     resid = _field(res, "residual_energy", meta)
     power = amp ** 2 / (2 if meta["real"] else 1)
     out = {
@@ -599,7 +602,7 @@ def _tone_vars(res: Any, meta: dict, with_relative: bool) -> dict:
                        "tone power over the residual (noise and distortion) power"),
         "residual_rms": _var(np.sqrt(resid / meta["n"]), meta, "FS",
                              "rms of the fit residual in units of full scale"),
-        "noise_power_dbfs": _var(10 * np.log10(np.maximum(noise, 1e-300)), meta, "dBFS",
+        "noise_power_dbfs": _var(_field(res, "noise_dbfs", meta), meta, "dBFS",
                                  "mean power of the fit residual per sample"),
     }
     if with_relative and meta["multi"]:
@@ -650,8 +653,11 @@ def measure_tone(cap: xr.DataArray, frequency_hz: float | None = None, *,
     ------
     MeasurementError
         Fewer than 16 samples (4 with ``refine=False``), or no tone above the noise: the
-        integrated SNR ``N A^2 / sigma^2`` (complex) must exceed ``ln N + ln(1/1e-4)``, the
-        level a noise-only periodogram peak exceeds with probability about 1e-4.
+        normalised periodogram peak ``N A^2 / sigma^2`` (complex; ``N A^2 / (4 sigma^2)``
+        real) must exceed ``ln N + ln(1/1e-4)``, the level the largest of N noise-only bins
+        exceeds with probability about 1e-4. Not tested with ``refine=False`` (a lock-in
+        measurement of whatever is at ``frequency_hz``). For a lazy capture the error is
+        raised when the result is computed.
     ValueError
         ``frequency_hz`` outside the band (complex: [fc - fs/2, fc + fs/2); real: strictly
         between fc and fc + fs/2).
