@@ -253,3 +253,12 @@ def test_conversions_lazy_equal_eager_and_multichannel():
         u = upconvert(zl, 1e6)
     assert_lazy(u)
     np.testing.assert_allclose(u.values, upconvert(z, 1e6).values, atol=1e-5)
+
+
+def test_segments_follow_the_center_frequency():
+    seg = [{"start_sample": 0, "center_frequency": 1e9},
+           {"start_sample": 500, "center_frequency": 1.001e9}]
+    cap = quadkit.capture(noise(1000), sample_rate=1e6, center_frequency=1e9, segments=seg)
+    y = shift(cap, 2e5)
+    assert [s["center_frequency"] for s in y.attrs["segments"]] == [1e9 - 2e5, 1.001e9 - 2e5]
+    assert cap.attrs["segments"][0]["center_frequency"] == 1e9  # input untouched

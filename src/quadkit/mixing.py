@@ -56,6 +56,21 @@ def _nco(ratio: float, start: int, count: int, dtype: Any = np.complex64) -> np.
     return osc.reshape(-1)[off:off + count]
 
 
+def _recentred(attrs: dict, delta_hz: float) -> dict:
+    """Attr updates for a capture whose 0 Hz now stands for ``delta_hz`` more than before:
+    ``center_frequency`` and each retune segment's ``center_frequency``."""
+    out: dict = {"center_frequency": float(attrs.get("center_frequency", 0.0)) + delta_hz}
+    segs = attrs.get("segments")
+    if isinstance(segs, (list, tuple)):
+        out["segments"] = [
+            {**s, "center_frequency": float(s["center_frequency"]) + delta_hz}
+            if isinstance(s, dict) and isinstance(s.get("center_frequency"), (int, float))
+            else s
+            for s in segs
+        ]
+    return out
+
+
 def _shift_block(x: np.ndarray, *, ratio: float, start: int, out_dtype: np.dtype,
                  block_info: Any = None) -> np.ndarray:
     first = start
@@ -92,8 +107,9 @@ def shift(cap: xr.DataArray, offset_hz: float) -> xr.DataArray:
     """Move the content of a capture up by ``offset_hz``, keeping absolute frequencies.
 
     ``y[n] = x[n] exp(j 2 pi offset_hz n / fs)`` with n the absolute sample index, and
-    ``center_frequency`` becomes ``center_frequency - offset_hz``: a signal at offset f (absolute
-    ``center_frequency + f``) moves to offset ``f + offset_hz`` and keeps its absolute frequency.
+    ``center_frequency`` becomes ``center_frequency - offset_hz`` (and so does each retune
+    segment's): a signal at offset f (absolute ``center_frequency + f``) moves to offset
+    ``f + offset_hz`` and keeps its absolute frequency.
     To bring a signal at offset f to 0 Hz, call ``shift(cap, -f)``.
 
     Parameters
@@ -121,8 +137,8 @@ def shift(cap: xr.DataArray, offset_hz: float) -> xr.DataArray:
     _check_cap("shift", cap)
     f = check_finite("shift", "offset_hz", offset_hz)
     out = _mix(cap, f)
-    cf = float(cap.attrs.get("center_frequency", 0.0)) - f
-    return _capture.like(cap, out, start_index=_capture.start_index(cap), center_frequency=cf)
+    return _capture.like(cap, out, start_index=_capture.start_index(cap),
+                         **_recentred(cap.attrs, -f))
 
 
 def downconvert(
@@ -207,8 +223,7 @@ def downconvert(
         raise ValueError(f"downconvert: sample_rate={target!r} is too low for bandwidth_hz={bw!r}")
     stages = _dec._decim_chain(fs, m, bw / 2, f_stop, a, 0.01, mod_hz=fc, func=func,
                                gain=2.0, stop_cap=image)
-    cf = float(real_cap.attrs.get("center_frequency", 0.0)) + fc
-    out = _dec._apply(real_cap, stages, rate, center_frequency=cf)
+    out = _dec._apply(real_cap, stages, rate, **_recentred(real_cap.attrs, fc))
     if not integer:
         out = _dec.resample(out, target, stopband_db=a)
     return out
@@ -279,5 +294,5 @@ def upconvert(
                                                                stopband_db))
     mixed = _mix(up, fc)
     real = mixed.real
-    cf = float(cap.attrs.get("center_frequency", 0.0)) - fc
-    return _capture.like(up, real, start_index=_capture.start_index(up), center_frequency=cf)
+    return _capture.like(up, real, start_index=_capture.start_index(up),
+                         **_recentred(cap.attrs, -fc))
