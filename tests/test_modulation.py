@@ -392,6 +392,7 @@ def test_iq_offset_of_a_known_dc():
     # term's sampling spread and the floor)
     assert float(kept.evm_rms_percent) == pytest.approx(math.hypot(noise_evm, 1.0), rel=0.1)
     assert kept.attrs["iq_offset_removed"] == "no"
+    assert float(kept.iq_offset_db) == pytest.approx(float(res.iq_offset_db), abs=0.5)
 
 
 def test_phase_and_magnitude_error_of_a_known_rotation_free_distortion():
