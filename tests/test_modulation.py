@@ -324,6 +324,29 @@ def test_blind_noiseless_burst_all_schemes(scheme):
     assert_units(res)
 
 
+def test_burst_in_noise_only_the_burst_is_analysed():
+    # 1500 16QAM symbols in a capture five times as long whose silence holds the same noise:
+    # if noise-only instants were counted, the EVM would exceed 1/sqrt(SNR) by far (each
+    # counts as a ~100 % error); analysing exactly the burst gives 1/sqrt(SNR) (REFERENCES.md).
+    rng = np.random.default_rng(12)
+    bits, cap = burst("16qam", 1500, rng, offset_hz=31e3, phase_rad=-2.0)
+    lead, tail = 9000, 11003
+    x = np.concatenate([np.zeros(lead, np.complex64), cap.values, np.zeros(tail, np.complex64)])
+    noisy = awgn(quadkit.capture(x, sample_rate=FS, symbol_rate=RS), 20.0, rng)
+    res = qm.analyze(noisy, "16qam", symbol_rate=RS, reference=bits)
+    assert abs(int(res.symbol_count) - 1500) <= 2  # a noisy edge symbol may fall either way
+    expected = math.hypot(10.0, _isi_floor_percent())
+    tol = 4 / (2 * math.sqrt(1500))  # 4 sigma of the chi-square spread, as above
+    assert float(res.evm_rms_percent) == pytest.approx(expected, rel=tol)
+    t_first = lead / FS + cap.attrs["first_symbol_s"]
+    assert float(res.burst_start_s) == pytest.approx(t_first - 0.5 / RS, abs=2.1 / RS)
+    assert "burst found" in res.attrs["burst"]
+    blind = qm.analyze(noisy, "16qam", symbol_rate=RS)
+    assert abs(int(blind.symbol_count) - 1500) <= 2
+    # CRB (Rife & Boorstyn, see below) for 1500 symbols at 20 dB: 0.67 Hz rms; 5 Hz is 7.5 sigma
+    assert float(blind.frequency_error_hz) == pytest.approx(31e3, abs=5.0)
+
+
 @pytest.mark.parametrize("scheme", ["qpsk", "16qam"])
 @pytest.mark.parametrize("snr_db", [10.0, 20.0, 30.0])
 def test_data_aided_evm_under_awgn(scheme, snr_db):
