@@ -524,3 +524,12 @@ def test_lazy_small_chunks_are_merged_for_long_filters():
     # the 3-stage chain reaches ~2 ms each side: output chunks are not single samples
     assert min(out.data.chunks[-1]) > 1 and len(out.data.chunks[-1]) > 1
     np.testing.assert_allclose(out.values, decimate(cap, 100).values, atol=1e-5)
+
+
+def test_design_response_curve_matches_freqz():
+    d = lowpass_taps(100e3, 150e3, sample_rate=1e6)
+    g = d.response(1001)
+    _, h = ss.freqz(d.taps, worN=g["frequency"].values, fs=1e6)  # scipy reference
+    # compared as amplitudes: dB would magnify rounding at the stopband nulls
+    np.testing.assert_allclose(10 ** (g.values / 20), np.abs(h), rtol=1e-9, atol=1e-13)
+    assert g.attrs["units"] == "dB" and g["frequency"].attrs["units"] == "Hz"

@@ -83,6 +83,8 @@ class LowpassDesign:
         Measured peak-to-peak ripple over ``[0, passband_hz]`` in dB.
     stopband_db : float
         Measured smallest attenuation over ``[stopband_hz, sample_rate / 2]`` in dB.
+
+    ``n_taps`` is the length and :meth:`response` the gain curve (an ``xarray.DataArray``).
     """
 
     taps: np.ndarray
@@ -97,6 +99,25 @@ class LowpassDesign:
     @property
     def n_taps(self) -> int:
         return int(self.taps.size)
+
+    def response(self, n_points: int = 4097) -> xr.DataArray:
+        """Gain in dB from 0 Hz to ``sample_rate / 2`` on ``n_points`` frequencies.
+
+        Examples
+        --------
+        >>> from quadkit.decimation import lowpass_taps
+        >>> g = lowpass_taps(100e3, 150e3, sample_rate=1e6).response()
+        >>> round(float(g.sel(frequency=0.0)), 6), g.attrs["units"], bool(g[-1] < -80)
+        (0.0, 'dB', True)
+        """
+        n_points = check_positive_int("response", "n_points", n_points, minimum=2)
+        f = np.linspace(0.0, self.sample_rate / 2, n_points)
+        gain = _dtft(self.taps, f, self.sample_rate)
+        db = 20 * np.log10(np.maximum(gain, 1e-300))
+        out = xr.DataArray(db, dims=("frequency",), coords={"frequency": f}, name="gain_db",
+                           attrs={"units": "dB", "long_name": "filter gain"})
+        out["frequency"].attrs.update(units="Hz", long_name="frequency")
+        return out
 
 
 def _ripple_to_delta(ripple_db: float) -> float:
@@ -429,8 +450,6 @@ def _apply(cap: xr.DataArray, stages: Sequence[_Stage], sample_rate: float,
     ex_lo, ex_hi = s, s + n
     j0, j1 = _chain_exist(stages, ex_lo, ex_hi)
     out_dtype = _out_dtype(cap.dtype, stages)
-    if cap.ndim == 2:
-        data = data  # channel axis first, time last: the engine works on the last axis
     if _capture.is_lazy(cap):
         import dask.array as da
 
@@ -659,8 +678,9 @@ def decimate(
     Parameters
     ----------
     cap : xarray.DataArray
-        Capture, dims ``(time,)`` or ``(channel, time)``, numpy or dask. Lazy input stays lazy;
-        each output chunk covers one input chunk's span and reads a halo of neighbours.
+        Capture, dims ``(time,)`` or ``(channel, time)``, numpy or dask. Lazy input stays lazy:
+        each output chunk covers the span of one input chunk (chunks shorter than the filter
+        chain's reach are merged with their neighbours) and reads a halo of the neighbours.
     factor : int
         Positive integer.
     stopband_db : float
