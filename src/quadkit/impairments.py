@@ -1043,19 +1043,109 @@ def _mt_stat_factory(k: int):
     return stat
 
 
+_CHIRP_WINDOW = 2048
+
+
+def _chirp_windows(x: np.ndarray, pos0: int, width: int) -> np.ndarray:
+    """Per whole window of ``width`` samples (at positions k * width): [f, c+, c-, c0, rate].
+
+    The window's sweep is modelled as u(m) = exp(j 2 pi (f m + k m^2 / 2)), m from the window
+    centre, with f and the rate k from lag-1 products (whole window and halves); u, conj(u), 1 are
+    fitted by least squares. An error in the model phase multiplies c+ by D and c- by
+    conj(D), so the ratio c- / conj(c+) does not depend on it.
+    """
+    n_win = x.shape[1] // width
+    out = np.zeros((x.shape[0], n_win, 5), dtype=np.complex128)
+    m = np.arange(width) - (width - 1) / 2.0
+    for w in range(n_win):
+        seg = x[:, w * width:(w + 1) * width].astype(np.complex128)
+        for c in range(x.shape[0]):
+            clean = seg[c]
+            for _ in range(2):
+                # second round: the sweep parameters from the samples with the fitted image
+                # and DC removed, so their cross terms no longer bias f and the rate
+                d = clean[1:] * np.conj(clean[:-1])
+                f = np.angle(np.sum(d)) / (2.0 * np.pi)
+                # the rate from the two halves' frequencies: a second lag product would be
+                # swamped by the image's cross terms (the rate is ~1e-5 rad/sample^2)
+                half = d.size // 2
+                f1 = np.angle(np.sum(d[:half])) / (2.0 * np.pi)
+                f2 = np.angle(np.sum(d[half:])) / (2.0 * np.pi)
+                rate = (f2 - f1) / half
+                u = np.exp(2j * np.pi * (f * m + rate * m * m / 2.0))
+                reg = np.stack([u, np.conj(u), np.ones(width)], axis=1)
+                coef = np.linalg.lstsq(reg, seg[c], rcond=None)[0]
+                clean = seg[c] - coef[1] * reg[:, 1] - coef[2]
+            out[c, w] = (f, coef[0], coef[1], coef[2], rate)
+    return out
+
+
+def _chirp_sums(x2, n: int, fs_: float, n_bins: int, func: str):
+    """Window fits of a sweep, binned in frequency: (ratios (ch, K), sums (ch, windows, 3K+2))."""
+    width = _CHIRP_WINDOW
+    if _capture._is_dask(x2):
+        import dask.array as da
+
+        size = max(1, round(float(np.median(x2.chunks[1])) / width)) * width
+        xa = x2.rechunk({0: -1, 1: size})
+        wins = tuple(int(c) // width for c in xa.chunks[1])
+        res = da.map_blocks(lambda b: _chirp_windows(b, 0, width), xa, dtype=np.complex128,
+                            new_axis=[2], chunks=(xa.chunks[0], wins, (5,)))
+        res = np.asarray(res.compute())
+    else:
+        res = _chirp_windows(np.asarray(x2), 0, width)
+    f = res[..., 0].real
+    tone, image, dc = res[..., 1] / fs_, res[..., 2] / fs_, res[..., 3] / fs_
+    # tone and image overlap near DC and fs/2: drop windows whose sweep comes within
+    # 4 bins of either
+    reach = np.abs(res[..., 4].real) * width / 2.0 + 4.0 / width
+    usable = (np.abs(f) > reach) & (np.abs(f) < 0.5 - reach)
+    fr = f[0][usable[0]]
+    if fr.size < 2 * n_bins:
+        raise MeasurementError(
+            f"{func}: the sweep covers too little of the band for {n_bins} bins "
+            f"({fr.size} usable windows of {width} samples)")
+    edges = np.linspace(fr.min(), fr.max(), n_bins + 1)
+    which = np.clip(np.searchsorted(edges, f, side="right") - 1, 0, n_bins - 1)
+    which = np.where(usable, which, -1)
+    n_ch, n_win = f.shape
+    sums = np.zeros((n_ch, n_win, 3 * n_bins + 2), dtype=np.complex128)
+    ratios = np.zeros((n_ch, n_bins))
+    for c in range(n_ch):
+        for b in range(n_bins):
+            sel = which[c] == b
+            if not np.any(sel):
+                raise MeasurementError(f"{func}: frequency bin {b} of the sweep holds no window")
+            sums[c, sel, b] = image[c, sel] * tone[c, sel]
+            sums[c, sel, n_bins + b] = np.abs(tone[c, sel]) ** 2
+            sums[c, sel, 2 * n_bins + b] = np.abs(image[c, sel]) ** 2
+            wgt = np.abs(tone[c, sel]) ** 2
+            ratios[c, b] = np.sum(f[c, sel] * wgt) / np.sum(wgt)
+    sums[..., 3 * n_bins] = dc * width
+    sums[..., 3 * n_bins + 1] = width
+    return ratios, sums
+
+
 def image_rejection_vs_frequency(
     cap: xr.DataArray,
     *,
     offsets_hz: Any = None,
     n_taps: int | None = None,
+    stimulus: Literal["multitone", "chirp"] = "multitone",
+    n_bins: int = 16,
 ) -> xr.Dataset:
-    """Image rejection across the band from a multitone, and a widely-linear FIR compensator.
+    """Image rejection across the band from a multitone or a chirp, and a WL FIR compensator.
 
     Each test tone at f and its image at -f are fitted by least squares per 4096-sample
     block (with DC and all other tones); ``r(f) = c-(-f) / conj(c+(f))`` gives the image
     rejection ``-20 log10 |r|`` at the tone's frequency, and the flat imbalance that would give
     the same image (``g e^{j phi} = (1 - r) / (1 + r)``). Use tones that are not mirror
     images of one another.
+
+    With ``stimulus="chirp"`` the capture holds a frequency sweep (for example
+    :func:`quadkit.synth.chirp`); each window of 2048 samples is fitted with its own local
+    sweep (frequency, and rate from the halves' frequencies), its mirror and DC, and the windows are
+    averaged in ``n_bins`` frequency bins across the swept range.
 
     The compensator ``y[n] = z[n] + sum_l w[l] conj(z[n - l + D])`` (``D = (n_taps - 1) / 2``,
     z DC-free) is fitted by least squares to ``W(-f) = -r(f)`` at the tone frequencies, where
@@ -1066,10 +1156,13 @@ def image_rejection_vs_frequency(
     Parameters
     ----------
     cap : capture
-        Complex capture of a multitone (two tones or more), numpy or dask.
+        Complex capture of a multitone (two tones or more) or a sweep, numpy or dask.
     offsets_hz : sequence of float, optional
         Baseband offsets of the test tones; each is refined to the nearest spectral peak.
         Default: found (lines 30 dB above the median level, mirror-pair images dropped).
+    stimulus : {"multitone", "chirp"}
+    n_bins : int
+        Frequency bins across a sweep (``stimulus="chirp"`` only).
     n_taps : int, optional
         Odd FIR length of the compensator, fewer than the tones so that the least-squares
         fit is determined (more taps than tones would match the tones exactly and stray
@@ -1109,6 +1202,33 @@ def image_rejection_vs_frequency(
     n = x2.shape[-1]
     if n < 4 * _SEARCH_LEN:
         raise MeasurementError(f"{func}: {n} samples are too few; at least {4 * _SEARCH_LEN} are needed")
+    check_option(func, "stimulus", stimulus, ("multitone", "chirp"))
+    if stimulus == "chirp":
+        n_bins = check_positive_int(func, "n_bins", n_bins, minimum=2)
+        ratios, sums = _chirp_sums(x2, n, fs_, n_bins, func)
+        k = n_bins
+        tone = None
+    else:
+        ratios, sums, tone = _multitone_sums(func, x2, n, fs, fs_, offsets_hz)
+        k = ratios.shape[1]
+    if n_taps is None:
+        n_taps = max(1, min(7, k - 1 if k % 2 == 0 else k - 2))
+    elif n_taps >= k and n_taps > 1:
+        raise ValueError(
+            f"{func}: n_taps={n_taps} needs more than {n_taps} test tones; found {k}")
+    est, se = _jackknife(_mt_stat_factory(k), sums)
+    irr, gdb, phi = est[:, :k], est[:, k:2 * k], est[:, 2 * k:3 * k]
+    r = est[:, 3 * k:4 * k] + 1j * est[:, 4 * k:5 * k]
+    dci, dcq = est[:, 5 * k], est[:, 5 * k + 1]
+    if tone is not None:
+        power = np.mean(np.abs(tone) ** 2, axis=1)
+    else:
+        n_w = np.count_nonzero(sums[..., k:2 * k].real, axis=1)
+        power = sums[..., k:2 * k].real.sum(axis=1) / np.maximum(n_w, 1)
+    return _irr_result(cap, fs, ratios, r, irr, gdb, phi, se, dci, dcq, power, n_taps, k, stimulus)
+
+
+def _multitone_sums(func, x2, n, fs, fs_, offsets_hz):
     spec = _search_spectrum(_head(x2, min(n, 64 * _SEARCH_LEN)))
     mid = _SEARCH_LEN // 2
     if offsets_hz is None:
@@ -1127,29 +1247,24 @@ def image_rejection_vs_frequency(
         raise MeasurementError(f"{func}: no test tones away from DC were found")
     ratios = np.array([[_peak_ratio(row, int(b)) for b in bins] for row in spec])
     k = ratios.shape[1]
-    if n_taps is None:
-        n_taps = max(1, min(7, k - 1 if k % 2 == 0 else k - 2))
-    elif n_taps >= k and n_taps > 1:
-        raise ValueError(
-            f"{func}: n_taps={n_taps} needs more than {n_taps} test tones; found {k}")
     edges = _block_edges(n, _SEARCH_LEN)
     ratios, amp = _tone_amplitudes(x2, ratios, edges, fs_)
     tone, image, dc = amp[..., :k], amp[..., k:2 * k], amp[..., 2 * k]
     counts = np.diff(edges).astype(float)[None, :]
     sums = np.concatenate([image * tone, np.abs(tone) ** 2 + 0j, np.abs(image) ** 2 + 0j,
                            (dc * counts)[..., None], (counts + 0j * dc)[..., None]], axis=-1)
-    est, se = _jackknife(_mt_stat_factory(k), sums)
-    irr, gdb, phi = est[:, :k], est[:, k:2 * k], est[:, 2 * k:3 * k]
-    r = est[:, 3 * k:4 * k] + 1j * est[:, 4 * k:5 * k]
-    dci, dcq = est[:, 5 * k], est[:, 5 * k + 1]
+    return ratios, sums, tone
+
+
+def _irr_result(cap, fs, ratios, r, irr, gdb, phi, se, dci, dcq, power, n_taps, k, stimulus):
+    x_channels = ratios.shape[0]
     # widely-linear FIR fit: sum_l w[l] exp(+j 2 pi f_k (l - D)) = -r_k
     dly = n_taps // 2
     lags = np.arange(n_taps) - dly
-    taps = np.empty((x2.shape[0], n_taps), dtype=np.complex128)
-    for c in range(x2.shape[0]):
+    taps = np.empty((x_channels, n_taps), dtype=np.complex128)
+    for c in range(x_channels):
         mat = np.exp(2j * np.pi * ratios[c][:, None] * lags[None, :])
         taps[c] = np.linalg.lstsq(mat, -r[c], rcond=None)[0]
-    power = np.mean(np.abs(tone) ** 2, axis=1)
     offsets = ratios.mean(axis=0) * fs
     fc = float(cap.attrs.get("center_frequency", 0.0))
     chan = "channel" in cap.dims
@@ -1177,7 +1292,7 @@ def image_rejection_vs_frequency(
     coords["offset"] = ("frequency", offsets, {"units": "Hz", "long_name": "baseband offset"})
     coords["tap"] = ("tap", lags, {"units": "samples", "long_name": "tap lag l - D"})
     return result(variables, coords=coords,
-                  attrs={"method": "multitone", "compensator_delay_samples": dly})
+                  attrs={"method": stimulus, "compensator_delay_samples": dly})
 
 
 # ---------------------------------------------------------------------------------------------
