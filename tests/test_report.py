@@ -122,7 +122,8 @@ def test_multichannel_report_has_a_column_per_channel():
     cap = quadkit.synth.add_noise(cap, snr_db=50, rng=1)
     out = report.render(cap)
     assert "<th>channel 0</th><th>channel 1</th>" in out
-    assert out.count("data-root-id") == 3  # spectrum, spectrogram (a column), time
+    # spectrum, spectrogram (a column of two), time, phase noise (a tone dominates)
+    assert out.count("data-root-id") == 4
 
 
 def test_command_line_report_writes_an_escaped_page(tmp_path, bench_cap):
@@ -189,7 +190,7 @@ def test_report_renders_in_headless_chromium(browser, page, tmp_path_factory):
         const done = roots.filter(e => e.firstElementChild &&
                                        /bk-/.test(e.firstElementChild.className));
         return done.length === {n_roots} && roots.length === {n_roots} ? done.length : 0;""")
-    assert rendered == n_roots == 3
+    assert rendered == n_roots == 4  # spectrum, spectrogram, time, phase noise
     # BokehJS built a view for every root (its index also holds the document's own models).
     missing = _wait(browser, """
         const ids = [...document.querySelectorAll('[data-root-id]')].map(e => e.dataset.rootId);

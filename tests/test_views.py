@@ -293,11 +293,11 @@ def test_spectrogram_image_is_float32_at_display_resolution_with_extremes_kept()
     sg.values[3333, 1234] = -5.0  # one cell: a short burst in one bin
     fig = views.spectrogram_plot(sg)
     img = _data(fig, "spectrogram")["image"][0]
-    assert img.dtype == np.float32 and img.shape == (600, 1024)
+    assert img.dtype == np.float32 and img.shape == (360, 1024)
     assert img.max() == np.float32(-5.0)
     # The burst lands in the row and column holding time bin 3333 and frequency bin 1234.
     r, c = np.unravel_index(np.argmax(img), img.shape)
-    t_edges = (np.arange(601) * 5000) // 600
+    t_edges = (np.arange(361) * 5000) // 360
     f_edges = (np.arange(1025) * 4096) // 1024
     assert t_edges[r] <= 3333 < t_edges[r + 1] and f_edges[c] <= 1234 < f_edges[c + 1]
     assert _payload(fig) < BUDGET_BYTES
@@ -404,17 +404,36 @@ def test_phase_noise_plot_has_a_log_offset_axis_and_the_curve():
     off = np.logspace(1, 6, 60)
     curve = -70 - 20 * np.log10(off / 10)
     res = xr.Dataset({"phase_noise_dbc_hz": ("offset", curve, {"units": "dBc/Hz"}),
-                      "jitter_rms_s": ((), 1.2e-12, {"units": "s"})},
+                      "rms_jitter_s": ((), 1.2e-12, {"units": "s"})},
                      coords={"offset": off})
     fig = views.phase_noise_plot(res)
     assert type(fig.x_scale).__name__ == "LogScale"
     d = _data(fig, "phase_noise")
     np.testing.assert_allclose(d["x"], off)
     np.testing.assert_allclose(d["y"], curve.astype(np.float32))
-    assert "jitter" in fig.title.text and fig.yaxis.axis_label == "dBc/Hz"
+    assert "jitter 1.2 ps" in fig.title.text and fig.yaxis.axis_label == "dBc/Hz"
     two = xr.concat([res.phase_noise_dbc_hz, res.phase_noise_dbc_hz + 3], dim="channel")
     fig2 = views.phase_noise_plot(two)
     np.testing.assert_allclose(_data(fig2, "phase_noise:1")["y"], (curve + 3).astype(np.float32))
+
+
+def test_phase_noise_plot_of_a_capture_shows_the_curve_and_the_points():
+    # White phase noise of variance s2 on a carrier: L(f) = s2 / fs flat (IEEE Std 1139:
+    # L = S_phi / 2 with S_phi one-sided = 2 s2 / fs).
+    fs, n, s2 = 1e6, 2**18, 1e-6
+    phi = np.sqrt(s2) * np.random.default_rng(0).standard_normal(n)
+    cap = quadkit.capture(np.exp(1j * phi).astype(np.complex64), sample_rate=fs,
+                          center_frequency=1e9)
+    fig = views.phase_noise_plot(cap, carrier_hz=1e9, max_points=300)
+    d = _data(fig, "phase_noise")
+    assert len(d["x"]) <= 2 * 301  # reduced on log-spaced bins
+    pts = _data(fig, "phase_noise_points")
+    # Reported points within 1 dB of -120 dBc/Hz (16+ averaged segments: ~1 dB scatter
+    # per point is the chi-square spread of the averaged periodogram, memory).
+    np.testing.assert_allclose(pts["y"], 10 * np.log10(s2 / fs), atol=1.0)
+    # The min/max envelope brackets the flat level (it spans the periodogram's scatter).
+    assert np.min(d["y"]) < -120 < np.max(d["y"])
+    assert "rms phase" in fig.title.text
 
 
 def test_image_rejection_plot_against_frequency():
@@ -458,10 +477,10 @@ def test_spectrogram_plot_of_a_capture_follows_a_chirp():
                               center_frequency=100e6)
     fig = views.spectrogram_plot(cap, nperseg=256)
     img = _data(fig, "spectrogram")["image"][0]
-    assert img.dtype == np.float32 and img.shape[0] <= 600 and img.shape[1] == 256
+    assert img.dtype == np.float32 and img.shape[0] <= 360 and img.shape[1] == 256
     # The brightest column follows the sweep: -400 kHz in the first row, +400 kHz in the
     # last; column k holds offset (k - 128) * fs / 256 (fftshifted bins). Two bins of slack:
-    # a pooled row spans ~3.4 segments of a sweep moving 0.4 kHz per segment, plus leakage.
+    # a pooled row spans ~5.7 segments of a sweep moving 0.4 kHz per segment, plus leakage.
     first, last = int(np.argmax(img[0])), int(np.argmax(img[-1]))
     assert abs(first - (128 + (-400e3) * 256 / fs)) <= 2
     assert abs(last - (128 + 400e3 * 256 / fs)) <= 2

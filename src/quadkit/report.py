@@ -255,8 +255,20 @@ def _default_summary(cap: xr.DataArray, scheme: str | None, symbol_rate: float |
     return summarize(cap, scheme=scheme, symbol_rate=symbol_rate)
 
 
-def _plots(cap: xr.DataArray, scheme: str | None, symbol_rate: float | None,
-           step: Callable[[str], None]) -> tuple[list[tuple[str, Any]], list[str]]:
+def _dominant_tone(summary: xr.Dataset) -> float | None:
+    """The strongest tone's frequency when it holds most of the power (a carrier to measure
+    phase noise on), else None."""
+    try:
+        p = float(np.ravel(summary["tone_power_dbfs"].values)[0])
+        f = float(np.ravel(summary["tone_frequency_hz"].values)[0])
+        mean = float(np.nanmax(np.ravel(summary["mean_power_dbfs"].values)))
+    except (KeyError, IndexError, TypeError, ValueError):
+        return None
+    return f if math.isfinite(p) and p >= mean - 3.0 else None
+
+
+def _plots(cap: xr.DataArray, summary: xr.Dataset, scheme: str | None,
+           symbol_rate: float | None, step: Callable[[str], None]) -> tuple[list[tuple[str, Any]], list[str]]:
     """The figures of the report, and notes for the ones that could not be made."""
     from . import views
     from ._errors import MeasurementError
@@ -274,6 +286,9 @@ def _plots(cap: xr.DataArray, scheme: str | None, symbol_rate: float | None,
     attempt("spectrum", lambda: views.spectrum_plot(cap))
     attempt("spectrogram", lambda: views.spectrogram_plot(cap))
     attempt("time", lambda: views.time_plot(cap))
+    carrier = _dominant_tone(summary)
+    if carrier is not None and _capture.is_complex(cap):
+        attempt("phase noise", lambda: views.phase_noise_plot(cap, carrier_hz=carrier))
     if scheme is not None and symbol_rate is not None and _capture.is_complex(cap):
         from . import modulation
 
@@ -334,7 +349,7 @@ def render(
     if summary is None:
         step("summary")
         summary = _default_summary(cap, scheme, symbol_rate)
-    figs, notes = _plots(cap, scheme, symbol_rate, step)
+    figs, notes = _plots(cap, summary, scheme, symbol_rate, step)
     step("page")
     models = [f for _, f in figs]
     script, divs = components(models) if models else ("", ())

@@ -97,7 +97,7 @@ HEAT: tuple[str, ...] = _heat_palette()
 
 #: Display resolution: bins across a time or frequency axis, rows of a spectrogram image.
 _X_BINS = 2000
-_IMAGE_TIME_BINS = 600
+_IMAGE_TIME_BINS = 360
 _IMAGE_FREQ_BINS = 1024
 #: At most this many channels are drawn by default (the title says when some are left out).
 _MAX_CHANNELS = 8
@@ -738,7 +738,7 @@ def spectrogram_plot(
     >>> fig = spectrogram_plot(sg)
     >>> img = fig.select_one({"name": "spectrogram"}).data_source.data["image"][0]
     >>> img.shape, img.dtype
-    ((600, 1024), dtype('float32'))
+    ((360, 1024), dtype('float32'))
     """
     sg = _spectrogram_of(obj, spectrogram_kwargs)
     time_bins = check_positive_int("spectrogram_plot", "time_bins", time_bins)
@@ -1084,11 +1084,18 @@ def _axis_values(curve: xr.DataArray, dim: str, prefer: Sequence[str]) -> np.nda
     return np.arange(curve.sizes[dim], dtype=float)
 
 
+def _log_bins(n: int, n_bins: int) -> np.ndarray:
+    """Bin edges over 0..n, spaced evenly on a log axis (first bins one sample wide)."""
+    edges = np.unique(np.round(np.logspace(0, math.log10(n), n_bins + 1)).astype(np.int64))
+    return np.concatenate([[0], edges[edges < n], [n]])
+
+
 def phase_noise_plot(
     obj: Any,
     *,
     fig: Any = None,
     channel: Any = None,
+    max_points: int = _X_BINS,
     title: str | None = None,
     **phase_noise_kwargs: Any,
 ) -> Any:
@@ -1097,14 +1104,19 @@ def phase_noise_plot(
     Parameters
     ----------
     obj : capture or result
-        A capture holding a carrier (computed with
-        :func:`quadkit.impairments.phase_noise`) or its result: a Dataset with an L(f)
-        curve (a variable in dBc/Hz along an offset-frequency dim) and optionally the
-        integrated rms phase and jitter, shown in the title.
+        A capture holding a carrier (computed with :func:`quadkit.impairments.phase_noise`,
+        passing ``phase_noise_kwargs``) or its result: the full curve
+        ``phase_noise_curve_dbc_hz`` along ``curve_offset`` is drawn, the reported points
+        ``phase_noise_dbc_hz`` along ``offset`` are marked, and ``rms_phase_deg`` and
+        ``rms_jitter_s`` appear in the title. A DataArray (or a Dataset holding only one of
+        the two) in dBc/Hz along an offset dim works too.
+    max_points : int
+        A longer curve is shown as min/max envelopes over bins evenly spaced on the log axis.
 
     Returns
     -------
-    bokeh figure (log x axis); the curve renderer is named ``phase_noise``.
+    bokeh figure (log x axis); the curve renderer is named ``phase_noise``, the marked
+    points ``phase_noise_points``.
 
     Examples
     --------
@@ -1120,34 +1132,67 @@ def phase_noise_plot(
         from . import impairments
 
         obj = impairments.phase_noise(obj, **phase_noise_kwargs)
-    curve = _curve(obj, ("phase_noise_dbc_hz", "ssb_phase_noise_dbc_hz", "l_dbc_hz",
-                         "phase_noise"), "phase_noise_plot")
+    max_points = check_positive_int("phase_noise_plot", "max_points", max_points)
+    points = None
+    if isinstance(obj, xr.Dataset) and "phase_noise_curve_dbc_hz" in obj:
+        curve = obj["phase_noise_curve_dbc_hz"]
+        points = obj.get("phase_noise_dbc_hz")
+    else:
+        curve = _curve(obj, ("phase_noise_dbc_hz", "phase_noise_curve_dbc_hz", "phase_noise"),
+                       "phase_noise_plot")
     _, models, _ = _bokeh()
     dim = _along(curve)
-    off = _axis_values(curve, dim, ("offset_hz", "offset", "frequency_offset_hz"))
+    off = _axis_values(curve, dim, ("curve_offset", "offset_hz", "offset"))
     chans, note = _channels(curve, channel, "phase_noise_plot")
     if title is None:
         title = "Phase noise L(f)"
         if isinstance(obj, xr.Dataset):
             extras = []
-            for key, fmt in (("integrated_phase_rms_deg", "{:.3g}°"),
-                             ("integrated_phase_rms_rad", "{:.3g} rad"),
-                             ("rms_phase_deg", "{:.3g}°"), ("rms_phase_rad", "{:.3g} rad"),
-                             ("jitter_rms_s", "{:.3g} s"), ("jitter_s", "{:.3g} s")):
-                if key in obj.data_vars and obj[key].ndim == 0:
-                    extras.append(f"{key.replace('_', ' ')} {fmt.format(float(obj[key]))}")
+            if "rms_phase_deg" in obj and obj["rms_phase_deg"].ndim == 0:
+                extras.append(f"rms phase {float(obj['rms_phase_deg']):.3g}°")
+            if "rms_jitter_s" in obj and obj["rms_jitter_s"].ndim == 0:
+                extras.append(f"rms jitter {float(obj['rms_jitter_s']) * 1e12:.3g} ps")
+            if obj.attrs.get("integration_start_hz") and obj.attrs.get("integration_stop_hz"):
+                extras.append(f"over {_fmt_hz(obj.attrs['integration_start_hz'])} – "
+                              f"{_fmt_hz(obj.attrs['integration_stop_hz'])}")
+            if "carrier_frequency_hz" in obj and obj["carrier_frequency_hz"].ndim == 0:
+                extras.append(f"carrier {_fmt_hz(float(obj['carrier_frequency_hz']))}")
             if extras:
-                title += " — " + ", ".join(extras[:2])
+                title += " — " + ", ".join(extras)
         title += note
-    fig = _figure(fig, title=title, x_label="offset from carrier (Hz)",
+    fig = _figure(fig, title=title, x_label="offset from the carrier (Hz)",
                   y_label=str(curve.attrs.get("units", "dBc/Hz")), x_axis_type="log")
     keep = off > 0
+    x_all = off[keep]
+    px: list[float] = []
+    py: list[float] = []
     for k, ch in enumerate(chans):
-        y = np.asarray(_select(curve, ch).values, dtype=float)
-        src = models.ColumnDataSource({"x": off[keep], "y": y[keep].astype(np.float32)})
+        y = np.asarray(_select(curve, ch).values, dtype=float)[keep]
+        x = x_all
+        if x.size > 2 * max_points:
+            edges = _log_bins(x.size, max_points)
+            lo = np.minimum.reduceat(y, edges[:-1])
+            hi = np.maximum.reduceat(y, edges[:-1])
+            centre = np.sqrt(x[edges[:-1]] * x[edges[1:] - 1])
+            x, y = np.repeat(centre, 2), _interleave(lo, hi)
+        src = models.ColumnDataSource({"x": x, "y": y.astype(np.float32)})
         fig.line("x", "y", source=src, name="phase_noise" if ch is None else f"phase_noise:{ch}",
                  line_width=1.5, color=PALETTE["trace"] if ch is None else _channel_colour(k),
                  legend_label="L(f)" if ch is None else f"L(f) · ch {ch}")
+        if points is not None:
+            pdim = _along(points)
+            po = _axis_values(points, pdim, ("offset", "offset_hz"))
+            pv = np.asarray(_select(points, ch).values, dtype=float)
+            ok = np.isfinite(pv) & (po > 0)
+            px += list(po[ok])
+            py += list(pv[ok])
+    if points is not None:
+        psrc = models.ColumnDataSource({"x": px, "y": py,
+                                        "text": [f"{v:.1f} dBc/Hz at {_fmt_hz(f)}"
+                                                 for f, v in zip(px, py)]})
+        r = fig.scatter("x", "y", source=psrc, name="phase_noise_points", size=8,
+                        color=PALETTE["peak"], legend_label="reported offsets")
+        fig.add_tools(models.HoverTool(renderers=[r], tooltips=[("L(f)", "@text")]))
     _finish_legend(fig)
     return fig
 
