@@ -22,8 +22,12 @@ result.attrs["unsettled_end"]))`` keeps only fully settled samples. Sample indic
 Implementation: overlap-save FFT convolution in the input's precision (complex64 stays
 complex64), with the rate change done in the frequency domain (the spectrum of the
 zero-stuffed input is the input spectrum repeated ``P`` times; decimating by ``Q`` folds the
-spectrum ``Q`` times), so the cost hardly depends on the filter length. Large factors run in
-several stages. A lazy (dask) capture is processed chunk by chunk: each output chunk reads the
+spectrum ``Q`` times), so the cost hardly depends on the filter length; in memory the frames
+are spread over the machine's cores (up to 4 threads), in a dask task they run on one. Chosen
+by measurement on 2^23 samples: this form beat ``scipy.signal.upfirdn`` (direct polyphase)
+several times over for 80 dB filters, and numba kernels did not earn a dependency. Factors
+above 16 run in several stages. A channel shift is folded into the first stage (band-pass
+taps), with the exact mix to 0 Hz done after decimation, at the low rate. A lazy (dask) capture is processed chunk by chunk: each output chunk reads the
 input chunks it needs plus a halo as long as the filter chain's reach, so the result does not
 depend on the chunking and ``time`` is never merged into one chunk.
 """
@@ -485,7 +489,8 @@ def _apply(cap: xr.DataArray, stages: Sequence[_Stage], sample_rate: float,
         if pieces:
             out = da.concatenate(pieces, axis=-1)
         else:
-            out = da.zeros(data.shape[:-1] + (0,), dtype=out_dtype, chunks=data.chunks[:-1] + ((0,),))
+            out = da.zeros(data.shape[:-1] + (0,), dtype=out_dtype,
+                           chunks=data.chunks[:-1] + ((0,),))
     else:
         y, j = _run_chain(np.asarray(data), s, ex_lo, ex_hi, stages, workers=_workers())
         out = _cast(y, out_dtype)

@@ -166,7 +166,8 @@ def downconvert(
         Carrier as a frequency of the real capture, ``0 < carrier_hz < sample_rate / 2``.
     bandwidth_hz : float, optional
         Width of the band kept; default 80 % of the widest band around the carrier that
-        stays inside ``(0, fs/2)``, or of the output rate if that is smaller. The band must lie inside ``(0, fs/2)``.
+        stays inside ``(0, fs/2)``, or of the output rate if that is smaller. The band must
+        lie inside ``(0, fs/2)``.
     sample_rate : float, optional
         Output rate in Hz (default: the input rate); must exceed ``bandwidth_hz``. Integer
         divisors run in the same pass; other rates go through :func:`~quadkit.decimation.resample`.
