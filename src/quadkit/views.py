@@ -450,7 +450,10 @@ def time_plot(
         title += note
     fig = _figure(fig, title=title, x_label=_time_label(cap, tunit), y_label="amplitude (FS)")
     for k, ch in enumerate(chans):
-        for j, c in enumerate(codes):
+        # The envelope first (underneath, faint), then I and Q over it.
+        order = sorted(range(len(codes)), key=lambda j: codes[j] != "a")
+        for j in order:
+            c = codes[j]
             y = ys[j, k].astype(np.float32)
             src = models.ColumnDataSource({"x": x, "y": y})
             name = names[c] if ch is None else f"{names[c]}:{ch}"
@@ -462,8 +465,9 @@ def time_plot(
                 colour = _channel_colour(k)
                 dash = {"i": "solid", "q": "dashed", "a": "dotted", "x": "solid"}[c]
                 label = f"{legend[c]} · ch {ch}"
+            alpha = {"a": 0.45, "i": 0.85, "q": 0.7, "x": 0.9}[c]
             fig.line("x", "y", source=src, name=name, color=colour, line_dash=dash,
-                     line_width=1.2, alpha=0.9, legend_label=label)
+                     line_width=1.2, alpha=alpha, legend_label=label)
     _finish_legend(fig)
     return fig
 
@@ -658,10 +662,20 @@ def spectrum_plot(
         peak_text += [f"{_fmt_hz(f)}  {w:.1f} {punit}" if np.isfinite(w)
                       else f"{_fmt_hz(f)}  {v:.1f} {units}" for f, w, v in zip(pf, pw, level)]
     if peaks is not None:
-        psrc = models.ColumnDataSource({"x": peak_x, "y": peak_y, "text": peak_text})
+        # Every peak is marked; labels that would overprint a stronger peak's label (closer
+        # than 1/40 of the span) are left to the hover tool.
+        span = (freq[-1] - freq[0]) / fscale if freq.size > 1 else 1.0
+        shown: list[float] = []
+        label = [""] * len(peak_x)
+        for j in np.argsort(peak_y)[::-1] if peak_y else []:
+            if all(abs(peak_x[j] - x0) > span / 40 for x0 in shown):
+                label[j] = peak_text[j]
+                shown.append(peak_x[j])
+        psrc = models.ColumnDataSource({"x": peak_x, "y": peak_y, "text": peak_text,
+                                        "label": label})
         fig.scatter("x", "y", source=psrc, name="peaks", marker="inverted_triangle", size=9,
                     color=PALETTE["peak"], legend_label="peaks")
-        fig.add_layout(models.LabelSet(x="x", y="y", text="text", source=psrc, y_offset=8,
+        fig.add_layout(models.LabelSet(x="x", y="y", text="label", source=psrc, y_offset=8,
                                        text_font_size="10px", text_color=PALETTE["peak"],
                                        text_align="center"))
         fig.add_tools(models.HoverTool(renderers=[fig.select_one({"name": "peaks"})],
