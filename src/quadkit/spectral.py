@@ -270,20 +270,66 @@ def _plan(func: str, n: int, fs: float, window: str, nperseg: int | None, rbw_hz
     return nperseg, step, nseg
 
 
-def _lazy_parts(data, nperseg: int, step: int, nseg: int, func, *args):
-    """One delayed task per chunk of ``time``: the segments that start in that chunk."""
+def _join(blocks: list) -> np.ndarray:
+    return blocks[0] if len(blocks) == 1 else np.concatenate(blocks, axis=0)
+
+
+def _chunk_powers(main: list, heads: list, takes: list, start: int, count: int,
+                  win: np.ndarray, step: int, mode: str) -> np.ndarray:
+    """Segment powers of ``count`` segments starting at ``start`` in one chunk of ``time``.
+
+    ``main`` is the chunk (a list of its channel blocks); ``heads`` are the following chunks,
+    of which the first ``takes`` samples are needed by the segments that run past the end.
+    Segments inside the chunk are strided views of it (no copy); only the few that cross
+    its end are copied into a short buffer.
+    """
+    nper = win.size
+    x = _join(main)[:, start:]
+    n_in = 0 if x.shape[-1] < nper else min(count, 1 + (x.shape[-1] - nper) // step)
+    pieces = []
+    if n_in:
+        pieces.append(_segment_powers(x[:, : (n_in - 1) * step + nper], win, step, mode, 1))
+    if n_in < count:
+        tail = [x[:, n_in * step:]] + [_join(h)[:, :t] for h, t in zip(heads, takes)]
+        pieces.append(_segment_powers(np.concatenate(tail, axis=-1), win, step, mode, 1))
+    if len(pieces) == 1:
+        return pieces[0]
+    if mode == "sum":
+        return pieces[0] + pieces[1]
+    if mode == "max":
+        return np.maximum(pieces[0], pieces[1])
+    return np.concatenate(pieces, axis=1)
+
+
+def _lazy_parts(data, nperseg: int, step: int, nseg: int, win: np.ndarray, mode: str):
+    """One delayed task per chunk of ``time``: the segments that start in that chunk.
+
+    A task gets its own chunk and, when its last segments run past the chunk's end, the
+    first samples of the following chunks (fewer than ``nperseg`` in all); the union over
+    all chunks is exactly the eager set of segments, whatever the chunking. The blocks come
+    from one ``to_delayed`` graph, so the graph grows linearly with the number of chunks.
+    """
     import dask
 
+    blocks = data.to_delayed()
     bounds = np.cumsum((0,) + tuple(data.chunks[-1]))
     parts = []
-    for a, b in zip(bounds[:-1], bounds[1:]):
-        k_lo = -(-int(a) // step)
-        k_hi = min(-(-int(b) // step), nseg)
+    for i, (a, b) in enumerate(zip(bounds[:-1], bounds[1:])):
+        a, b = int(a), int(b)
+        k_lo = -(-a // step)
+        k_hi = min(-(-b // step), nseg)
         if k_lo >= k_hi:
             continue
-        lo = k_lo * step
         hi = (k_hi - 1) * step + nperseg
-        parts.append((k_lo, k_hi, dask.delayed(func, pure=True)(data[:, lo:hi], *args)))
+        heads, takes = [], []
+        j = i + 1
+        while hi > b and j < len(bounds) - 1 and int(bounds[j]) < hi:
+            heads.append(list(blocks[:, j]))
+            takes.append(min(int(bounds[j + 1]), hi) - int(bounds[j]))
+            j += 1
+        task = dask.delayed(_chunk_powers, pure=True)(
+            list(blocks[:, i]), heads, takes, k_lo * step - a, k_hi - k_lo, win, step, mode)
+        parts.append((k_lo, k_hi, task))
     return parts
 
 
@@ -415,7 +461,7 @@ def psd(
     if lazy:
         import dask.array as da
 
-        parts = _lazy_parts(data, nperseg, step, nseg, _segment_powers, win, step, mode, 1)
+        parts = _lazy_parts(data, nperseg, step, nseg, win, mode)
         if mode == "all":
             pdt = np.float32 if data.dtype in (np.complex64, np.float32) else np.float64
             stack = da.concatenate([
@@ -530,7 +576,7 @@ def spectrogram(
     if _capture._is_dask(data):
         import dask.array as da
 
-        parts = _lazy_parts(data, nperseg, step, nseg, _segment_powers, win, step, "all", 1)
+        parts = _lazy_parts(data, nperseg, step, nseg, win, "all")
         raw = da.concatenate([
             da.from_delayed(p, shape=(C, hi - lo, nfreq), dtype=pdt) for lo, hi, p in parts
         ], axis=1)
