@@ -452,21 +452,24 @@ def _tone_fit(w: np.ndarray, center: float = 0.0, halfwidth: float = 0.5) -> tup
     """
     n = w.size
     k = np.arange(n) - (n - 1) / 2
-    nfft = max(1024, 1 << int(math.ceil(math.log2(4 * n))))
-    spec = np.abs(np.fft.fft(w, nfft)) ** 2
-    f = np.fft.fftfreq(nfft)
-    dist = (f - center + 0.5) % 1.0 - 0.5
-    mask = np.abs(dist) <= halfwidth
-    if not mask.any():
-        mask[np.argmin(np.abs(dist))] = True
-    cand = np.flatnonzero(mask)
-    m = cand[np.argmax(spec[cand])]
-    ratio = float(spec[m] / max(np.median(spec[cand]), 1e-300))
-    # Newton steps on P(f) = |S(f)|^2, S(f) = sum w_k exp(-j 2 pi f k), from the padded peak
-    # (within 1/8 bin, inside the concave main lobe).
-    fr = float(f[m])
-    step_max = 1.0 / nfft
-    for _ in range(4):
+    if halfwidth * n <= 0.5:
+        # Refinement from a start already within a fraction of a bin: Newton steps only.
+        fr, ratio, step_max, steps = float(center), math.nan, 0.5 / n, 3
+    else:
+        nfft = max(1024, 1 << int(math.ceil(math.log2(4 * n))))
+        spec = np.abs(np.fft.fft(w, nfft)) ** 2
+        f = np.fft.fftfreq(nfft)
+        dist = (f - center + 0.5) % 1.0 - 0.5
+        mask = np.abs(dist) <= halfwidth
+        if not mask.any():
+            mask[np.argmin(np.abs(dist))] = True
+        cand = np.flatnonzero(mask)
+        m = cand[np.argmax(spec[cand])]
+        ratio = float(spec[m] / max(np.median(spec[cand]), 1e-300))
+        # Newton from the padded peak (within 1/8 bin, inside the concave main lobe).
+        fr, step_max, steps = float(f[m]), 1.0 / nfft, 4
+    # Newton steps on P(f) = |S(f)|^2, S(f) = sum w_k exp(-j 2 pi f k).
+    for _ in range(steps):
         e = w * np.exp(-2j * np.pi * fr * k)
         s0 = e.sum()
         s1 = np.dot(e, -2j * np.pi * k)
@@ -649,20 +652,26 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     def normalise(sel: slice, nu: float, gain: complex, dc: complex) -> np.ndarray:
         return (z[sel] - dc * dc_reg[sel]) / (gain * np.exp(2j * np.pi * nu * idx[sel]))
 
-    def fit(sel: slice, ideal: np.ndarray, nu: float, dc: complex) -> tuple[float, complex, complex]:
+    def fit(sel: slice, ideal: np.ndarray, nu: float, dc: complex,
+            first_pass: bool = False) -> tuple[float, complex, complex]:
         # Maximum-likelihood frequency of z * conj(ideal), then least squares of
         # z = gain * ideal * exp(j 2 pi nu k) + dc * (matched-filtered, derotated DC).
         zz, uu, kk = z[sel], dc_reg[sel], idx[sel]
         w = (zz - dc * uu) * np.conj(ideal)
-        nu, _, _ = _tone_fit(w, nu, 3.0 / kk.size)
+        nu, _, _ = _tone_fit(w, nu, 3.0 / kk.size if first_pass else 0.0)
         a_col = ideal * np.exp(2j * np.pi * nu * kk)
-        coef, *_ = np.linalg.lstsq(np.stack((a_col, uu), axis=1), zz, rcond=None)
+        # normal equations of the two-column least squares (well conditioned: the DC column
+        # is nearly orthogonal to the zero-mean symbols)
+        gram = np.array([[np.vdot(a_col, a_col), np.vdot(a_col, uu)],
+                         [np.vdot(uu, a_col), np.vdot(uu, uu)]])
+        rhs = np.array([np.vdot(a_col, zz), np.vdot(uu, zz)])
+        coef = np.linalg.solve(gram, rhs)
         return nu, complex(coef[0]), complex(coef[1])
 
     def converge(sel: slice, nu: float, gain: complex, dc: complex, n_iter: int):
-        for _ in range(n_iter):
+        for i in range(n_iter):
             ideal = decide(normalise(sel, nu, gain, dc), idx[sel])
-            nu, gain, dc = fit(sel, ideal, nu, dc)
+            nu, gain, dc = fit(sel, ideal, nu, dc, first_pass=i == 0)
         return nu, gain, dc, decide(normalise(sel, nu, gain, dc), idx[sel])
 
     # 3. Fine frequency and phase from the M-th power of all instants (those outside a burst
@@ -721,8 +730,8 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
             )
         ideal = ref[k0 + lag:k1 + lag]
         sel = slice(i0 + k0, i0 + k1)
-        for _ in range(2):
-            nu, gain, dc = fit(sel, ideal, nu, dc)
+        for i in range(2):
+            nu, gain, dc = fit(sel, ideal, nu, dc, first_pass=i == 0)
     z, dc_reg, u, kk = z[sel], dc_reg[sel], u[sel], idx[sel]
     # The IQ offset is always fitted (and reported); removing it from the errors is optional.
     meas = (z - (dc * dc_reg if remove_iq_offset else 0)) / (gain * np.exp(2j * np.pi * nu * kk))
