@@ -665,3 +665,30 @@ def test_accessor_forwards():
     cap = synth.tone(100e3, sample_rate=FS, n_samples=2**15)
     bad = cap.qk.apply(gain_imbalance_db=0.5)
     assert float(bad.qk.estimate().gain_imbalance_db) == pytest.approx(0.5, abs=1e-4)
+
+
+def test_lazy_graphs_pickle_and_run_on_a_cluster():
+    import pickle
+
+    import distributed
+
+    rng = np.random.default_rng(17)
+    cap = synth.tone(60e3, sample_rate=FS, n_samples=30000, amplitude=0.5)
+    lz = lazy(cap, rng)
+    bad = impairments.apply(lz, gain_imbalance_db=0.6, phase_skew_deg=3.0, phase_noise=-110.0,
+                            phase_noise_linewidth_hz=5.0, sample_rate_offset_ppm=10.0, rng=3)
+    fixed = impairments.correct(bad, impairments.estimate(bad))
+    # module-level functions and plain data only: plain pickle works, as worker processes need
+    again = pickle.loads(pickle.dumps(fixed.data))
+    bad_eager = impairments.apply(cap, gain_imbalance_db=0.6, phase_skew_deg=3.0,
+                                  phase_noise=-110.0, phase_noise_linewidth_hz=5.0,
+                                  sample_rate_offset_ppm=10.0, rng=3)
+    eager = impairments.correct(bad_eager, impairments.estimate(bad_eager))
+    np.testing.assert_allclose(again.compute(scheduler="sync"), eager.values, atol=1e-6)
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=2, processes=False,
+                                  dashboard_address=None) as cluster, \
+            distributed.Client(cluster):
+        est = impairments.estimate(bad)
+        got = fixed.compute()
+    assert float(est.gain_imbalance_db) == pytest.approx(0.6, abs=1e-3)
+    np.testing.assert_allclose(got.values, eager.values, atol=1e-6)

@@ -38,6 +38,7 @@ check the receiver's input power limits first.
 
 from __future__ import annotations
 
+import functools
 import math
 import numbers
 from collections.abc import Callable, Mapping
@@ -158,16 +159,17 @@ def _blockwise(data2d: Any, func: Callable[..., np.ndarray], out_len: int,
     # its chunks)
     data2d = data2d.rechunk({0: -1})
 
-    def per_chunk(x, block_info=None):
-        pos0 = block_info[0]["array-location"][-1][0]
-        return func(x, pos0, *args).astype(np.complex128)[:, None, :]
-
     nt = len(data2d.chunks[-1])
     parts = da.map_blocks(
-        per_chunk, data2d, dtype=np.complex128,
+        functools.partial(_blockwise_chunk, func=func, args=args), data2d, dtype=np.complex128,
         chunks=(data2d.chunks[0], (1,) * nt, (out_len,)), new_axis=[2],
     )
     return np.asarray(parts.sum(axis=1).compute())
+
+
+def _blockwise_chunk(x, *, func, args, block_info=None):
+    pos0 = block_info[0]["array-location"][-1][0]
+    return func(x, pos0, *args).astype(np.complex128)[:, None, :]
 
 
 def _head(data2d: Any, count: int) -> np.ndarray:
@@ -320,20 +322,26 @@ def _phase_noise_array(n: int, start: int, seed: int, taps, wiener_sigma, chunks
         return pn
     import dask.array as da
 
-    def coloured(block_info=None):
-        lo, hi = block_info[None]["array-location"][0]
-        return _coloured_phase(seed, taps, start + lo, hi - lo)
-
-    def steps(block_info=None):
-        lo, hi = block_info[None]["array-location"][0]
-        return _wiener_steps(seed, wiener_sigma, start + lo, hi - lo)
-
     pn = da.zeros(n, chunks=(chunks,))
     if taps is not None:
-        pn = pn + da.map_blocks(coloured, chunks=(chunks,), dtype=float)
+        pn = pn + da.map_blocks(
+            functools.partial(_coloured_block, seed=seed, taps=taps, start=start),
+            chunks=(chunks,), dtype=float)
     if wiener_sigma is not None:
-        pn = pn + da.cumsum(da.map_blocks(steps, chunks=(chunks,), dtype=float))
+        pn = pn + da.cumsum(da.map_blocks(
+            functools.partial(_steps_block, seed=seed, sigma=wiener_sigma, start=start),
+            chunks=(chunks,), dtype=float))
     return pn
+
+
+def _coloured_block(*, seed, taps, start, block_info=None):
+    lo, hi = block_info[None]["array-location"][0]
+    return _coloured_phase(seed, taps, start + lo, hi - lo)
+
+
+def _steps_block(*, seed, sigma, start, block_info=None):
+    lo, hi = block_info[None]["array-location"][0]
+    return _wiener_steps(seed, sigma, start + lo, hi - lo)
 
 
 _SINC_PHASES = 1024
@@ -580,12 +588,12 @@ def apply(
         if pn is not None:
             pslice = pn[p["ext"]:int(hi)].rechunk(-1)
             piece = da.map_blocks(
-                lambda a, b, p=p: _apply_piece(a, b, p=p), xin, pslice,
+                functools.partial(_apply_piece, p=p), xin, pslice,
                 dtype=cap.dtype, chunks=out_chunks,
             )
         else:
             piece = da.map_blocks(
-                lambda a, p=p: _apply_piece(a, None, p=p), xin, dtype=cap.dtype,
+                functools.partial(_apply_piece, pn=None, p=p), xin, dtype=cap.dtype,
                 chunks=out_chunks,
             )
         pieces.append(piece)
@@ -838,7 +846,8 @@ def estimate(cap: xr.DataArray, *, method: Literal["auto", "blind", "tone"] = "a
         Second-order statistics of a circular signal (noise, modulated traffic, several
         carriers): DC = mean; g = sqrt(E[Q^2] / E[I^2]);
         sin(phi) = -E[IQ] / sqrt(E[I^2] E[Q^2]) on the DC-free samples. A non-circular
-        signal (a lone tone, BPSK) biases it.
+        signal (BPSK or another real-valued modulation, a tone with a tone at its mirror
+        frequency) biases it.
     ``"tone"``
         From a test tone and its image: per block of 4096 samples the tone c+, its image c-
         and DC are fitted by least squares; r = c- / conj(c+) = nu / conj(mu) gives
@@ -978,9 +987,15 @@ def _wl_block(x, taps, dc, fs_, delay):
     z = x.astype(np.complex128) - dc[:, None] * fs_
     out = np.empty((z.shape[0], z.shape[1] - 2 * delay), dtype=np.complex128)
     for c in range(z.shape[0]):
-        conv = np.convolve(np.conj(z[c]), taps[c], mode="valid")  # index m -> n = m + L - 1 - ?
+        # valid part: conv[m] = sum_l w[l] conj(ext[m + 2D - l]) = sum_l w[l] conj(z[m + D - l])
+        conv = np.convolve(np.conj(z[c]), taps[c], mode="valid")
         out[c] = z[c, delay:z.shape[1] - delay] + conv
     return out.astype(x.dtype)
+
+
+def _wl_dask_block(b, *, taps, dc, fs_, delay, block_info=None):
+    lo, hi = block_info[0]["array-location"][0]
+    return _wl_block(b, taps[lo:hi], dc[lo:hi], fs_, delay)
 
 
 def _correct_wl(cap: xr.DataArray, comp: xr.Dataset) -> xr.DataArray:
@@ -1002,12 +1017,9 @@ def _correct_wl(cap: xr.DataArray, comp: xr.Dataset) -> xr.DataArray:
     else:
         import dask.array as da
 
-        def blk(b, block_info=None):
-            loc = block_info[0]["array-location"][0]
-            return _wl_block(b, taps[loc[0]:loc[1]], dc[loc[0]:loc[1]], fs_, delay)
-
-        out = da.map_overlap(blk, x2, depth={0: 0, 1: delay}, boundary={0: "none", 1: 0},
-                             trim=False, dtype=cap.dtype)
+        out = da.map_overlap(
+            functools.partial(_wl_dask_block, taps=taps, dc=dc, fs_=fs_, delay=delay), x2,
+            depth={0: 0, 1: delay}, boundary={0: "none", 1: 0}, trim=False, dtype=cap.dtype)
     if cap.data.ndim == 1:
         out = out[0]
     return _capture.like(cap, out)
@@ -1096,7 +1108,7 @@ def _chirp_sums(x2, n: int, fs_: float, n_bins: int, func: str):
         size = max(1, round(float(np.median(x2.chunks[1])) / width)) * width
         xa = x2.rechunk({0: -1, 1: size})
         wins = tuple(int(c) // width for c in xa.chunks[1])
-        res = da.map_blocks(lambda b: _chirp_windows(b, 0, width), xa, dtype=np.complex128,
+        res = da.map_blocks(_chirp_windows, xa, 0, width, dtype=np.complex128,
                             new_axis=[2], chunks=(xa.chunks[0], wins, (5,)))
         res = np.asarray(res.compute())
     else:
@@ -1645,14 +1657,12 @@ def phase_noise(
         size = max(1, round(float(np.median(x2.chunks[1])) / nperseg)) * nperseg
         xa = x2.rechunk({0: -1, 1: size})
 
-        def per_chunk(b, block_info=None):
-            pos0 = block_info[0]["array-location"][1][0]
-            return _phase_periodograms(b, pos0, nperseg, ratios, n)[:, None, :]
-
         nt = len(xa.chunks[1])
-        parts = da.map_blocks(per_chunk, xa, dtype=float, new_axis=[2],
+        chunk_fn = functools.partial(_blockwise_chunk, func=_phase_periodograms,
+                                     args=(nperseg, ratios, n))
+        parts = da.map_blocks(chunk_fn, xa, dtype=np.complex128, new_axis=[2],
                               chunks=(xa.chunks[0], (1,) * nt, (nperseg // 2 + 2,)))
-        acc = np.asarray(parts.sum(axis=1).compute())
+        acc = np.asarray(parts.sum(axis=1).compute()).real
     else:
         acc = _phase_periodograms(np.asarray(x2), 0, nperseg, ratios, n)
     nbin = nperseg // 2 + 1
