@@ -667,3 +667,28 @@ def test_accessor_forwards():
     xr.testing.assert_identical(a, b)
     for name in recovery._ACCESSOR:
         assert name in dir(cap.qk)
+
+
+def test_real_tone_beside_a_large_dc_offset():
+    # the four-parameter model fits the dc term (IEEE Std 1241): a dc three times the tone
+    # neither wins the search nor biases the tone
+    rng = np.random.default_rng(8)
+    n = 8192
+    x = 0.3 + 0.1 * np.cos(2 * np.pi * 0.0377 * np.arange(n) + 0.9) + 0.001 * rng.standard_normal(n)
+    cap = quadkit.capture(x, sample_rate=1.0)
+    res = recovery.measure_tone(cap)
+    fit = recovery.sine_fit(cap)
+    # noise 0.001 on A = 0.1 over 8192 samples: CRLB std of f ~ 2e-8 cycles, of A ~ 1.6e-5;
+    # tolerances at ~50 sigma only guard against the dc being mistaken for the tone
+    assert abs(float(res.offset_hz) - 0.0377) < 1e-6
+    assert abs(float(res.amplitude) - 0.1) < 1e-3
+    assert abs(float(fit.offset) - 0.3) < 1e-3
+
+
+def test_results_turn_into_json():
+    cap = quadkit.synth.tone(2e3, sample_rate=1e6, n_samples=4000, dtype=np.complex128)
+    out = quadkit.to_json(recovery.harmonics(cap, 2e3, 3))
+    # absent harmonics of a pure tone sit at the rounding level (about -300 dBc)
+    assert out["level_dbc"][0] == 0.0 and out["level_dbc"][1] < -200
+    assert all(isinstance(v, float) for v in out["amplitude"])
+    assert isinstance(quadkit.to_json(recovery.measure_tone(cap))["frequency_hz"], float)

@@ -1011,7 +1011,10 @@ def _finish_harmonics(gram: np.ndarray, nh: int, real: bool, func: str) -> dict:
     if np.any(amp[:, 0] <= 0):
         raise MeasurementError(f"{func}: the fundamental has zero amplitude")
     thd = np.sqrt(np.sum(amp[:, 1:] ** 2, axis=1)) / amp[:, 0]
-    return {"amplitude": amp, "phase0": np.angle(coef), "thd": thd}
+    with np.errstate(divide="ignore"):  # an absent harmonic is -inf dB, not NaN
+        return {"amplitude": amp, "phase0": np.angle(coef), "thd": thd,
+                "power_dbfs": 10 * np.log10(amp ** 2 / (2 if real else 1)),
+                "level_dbc": 20 * np.log10(amp / amp[:, :1]), "thd_db": 20 * np.log10(thd)}
 
 
 def harmonics(cap: xr.DataArray, fundamental_hz: float, n: int = 10) -> xr.Dataset:
@@ -1090,33 +1093,31 @@ def harmonics(cap: xr.DataArray, fundamental_hz: float, n: int = 10) -> xr.Datas
     gram = _pass(data, lazy, _FixedFit, ratio, tuple(range(1, n + 1)), real)
     res = _step(lazy, _finish_harmonics, gram, n, real, func)
     shape = (meta["nchan"], n)
-    amp = _field_nd(res, "amplitude", meta, shape)
-    ph = _field_nd(res, "phase0", meta, shape)
-    thd = _field_nd(res, "thd", meta, (meta["nchan"],))
+    fields = {key: _field_nd(res, key, meta, shape)
+              for key in ("amplitude", "phase0", "power_dbfs", "level_dbc")}
+    fields.update({key: _field_nd(res, key, meta, (meta["nchan"],)) for key in ("thd", "thd_db")})
     if not meta["multi"]:
-        amp, ph, thd = amp[0], ph[0], thd[0]
+        fields = {key: value[0] for key, value in fields.items()}
     dims = ("channel", "harmonic") if meta["multi"] else ("harmonic",)
     sdims = ("channel",) if meta["multi"] else ()
-    power = amp ** 2 / (2 if real else 1)
-    first = amp[..., :1]
-    with np.errstate(divide="ignore"):
-        out = {
-            "amplitude": quantity(amp, "FS", "harmonic peak amplitude", dims=dims),
-            "power_dbfs": quantity(10 * np.log10(power), "dBFS", "harmonic power", dims=dims),
-            "level_dbc": quantity(20 * np.log10(amp / first), "dBc",
-                                  "harmonic level relative to the fundamental", dims=dims),
-            "phase_rad": quantity(ph, "rad", "harmonic phase at the first sample", dims=dims),
-            "phase_deg": quantity(np.degrees(ph), "deg", "harmonic phase at the first sample",
-                                  dims=dims),
-            "frequency_hz": quantity(fc + folded * fs, "Hz",
-                                     "frequency where the harmonic is measured (folded)",
-                                     dims=("harmonic",)),
-            "offset_hz": quantity(folded * fs, "Hz", "offset where the harmonic is measured",
-                                  dims=("harmonic",)),
-            "thd_percent": quantity(100 * thd, "%", "total harmonic distortion", dims=sdims),
-            "thd_db": quantity(20 * np.log10(thd), "dB", "total harmonic distortion",
-                               dims=sdims),
-        }
+    ph = fields["phase0"]
+    out = {
+        "amplitude": quantity(fields["amplitude"], "FS", "harmonic peak amplitude", dims=dims),
+        "power_dbfs": quantity(fields["power_dbfs"], "dBFS", "harmonic power", dims=dims),
+        "level_dbc": quantity(fields["level_dbc"], "dBc",
+                              "harmonic level relative to the fundamental", dims=dims),
+        "phase_rad": quantity(ph, "rad", "harmonic phase at the first sample", dims=dims),
+        "phase_deg": quantity(np.degrees(ph), "deg", "harmonic phase at the first sample",
+                              dims=dims),
+        "frequency_hz": quantity(fc + folded * fs, "Hz",
+                                 "frequency where the harmonic is measured (folded)",
+                                 dims=("harmonic",)),
+        "offset_hz": quantity(folded * fs, "Hz", "offset where the harmonic is measured",
+                              dims=("harmonic",)),
+        "thd_percent": quantity(100 * fields["thd"], "%", "total harmonic distortion",
+                                dims=sdims),
+        "thd_db": quantity(fields["thd_db"], "dB", "total harmonic distortion", dims=sdims),
+    }
     coords = {"harmonic": np.arange(1, n + 1), **_coords(cap, meta)}
     return result(out, coords=coords, attrs={"sample_rate": fs, "center_frequency": fc,
                                              "fundamental_hz": float(fundamental_hz)})
