@@ -28,7 +28,7 @@ Examples
 >>> cap = quadkit.synth.tone(125e3, sample_rate=1e6, n_samples=65536, amplitude=0.5,
 ...                          center_frequency=915e6)
 >>> spec = spectral.psd(cap, nperseg=1024, scaling="power")
->>> f = float(spec.frequency[spec.argmax()])
+>>> f = float(spec.frequency[int(spec.argmax("frequency"))])
 >>> f, round(float(spec.max()), 2)  # 915.125 MHz at 20 log10(0.5) dBFS
 (915125000.0, -6.02)
 """
@@ -65,7 +65,8 @@ __all__ = [
     "tone_quality",
     "window_properties",
 ]
-_ACCESSOR = ("psd", "spectrogram", "channel_power", "occupied_bandwidth", "aclr", "tone_quality")
+_ACCESSOR = ("psd", "spectrogram", "find_peaks", "channel_power", "occupied_bandwidth", "aclr",
+             "tone_quality")
 
 # Cosine-sum coefficients a_m of the periodic windows (Harris, Proc. IEEE 66(1), 1978;
 # the flat top is the one scipy.signal.windows.flattop uses).
@@ -236,6 +237,10 @@ def _median_bias(k: int) -> float:
     if k % 2:
         return order((k + 1) // 2)
     return 0.5 * (order(k // 2) + order(k // 2 + 1))
+
+
+def _median_rows(block: np.ndarray) -> np.ndarray:
+    return np.median(block, axis=1).astype(np.float64)
 
 
 def _plan(func: str, n: int, fs: float, window: str, nperseg: int | None, rbw_hz: float | None,
@@ -469,8 +474,7 @@ def psd(
             ], axis=1)
             col = max(1, min(nfreq, (1 << 23) // max(1, nseg)))
             stack = stack.rechunk({0: 1, 1: -1, 2: col})
-            raw = stack.map_blocks(lambda b: np.median(b, axis=1).astype(np.float64),
-                                   drop_axis=1, dtype=np.float64)
+            raw = stack.map_blocks(_median_rows, drop_axis=1, dtype=np.float64)
         else:
             stack = da.stack([da.from_delayed(p, shape=(C, nfreq), dtype=np.float64)
                               for _, _, p in parts])
@@ -799,6 +803,7 @@ def find_peaks(
     *,
     threshold_db: float = 10.0,
     max_peaks: int = 20,
+    **psd_options: Any,
 ) -> xr.Dataset:
     """Tones and spurs standing out of the local noise floor: a spur table in one call.
 
@@ -816,7 +821,8 @@ def find_peaks(
     Parameters
     ----------
     spectrum : xarray.DataArray
-        A result of :func:`psd` (any scaling; mean, median or max averaging).
+        A result of :func:`psd` (any scaling; mean, median or max averaging), or a capture,
+        whose :func:`psd` is then computed with ``psd_options``.
     threshold_db : float
         Minimum height above the local floor (and leakage), in dB.
     max_peaks : int
@@ -842,8 +848,7 @@ def find_peaks(
     >>> [round(float(f) / 1e3, 1) for f in t.offset_hz], [round(float(p), 2) for p in t.power_dbfs]
     ([-123.4, 250.7], [-6.02, -40.0])
     """
-    if not _is_spectrum(spectrum):
-        raise ValueError("find_peaks: expected a spectrum from quadkit.spectral.psd")
+    spectrum = _as_spectrum(spectrum, "find_peaks", psd_options)
     threshold_db = check_finite("find_peaks", "threshold_db", threshold_db)
     max_peaks = check_positive_int("find_peaks", "max_peaks", max_peaks)
     attrs = spectrum.attrs
@@ -1261,8 +1266,9 @@ def tone_quality(
 ) -> xr.Dataset:
     """Dynamic figures of a converter or receiver driven by one tone: SNR, SINAD, SFDR, THD, ENOB.
 
-    The figures follow the definitions of IEEE Std 1241-2010 (ADC test methods: SINAD and
-    ENOB in its clause 9, THD, SFDR and SNR beside them; clause numbers from memory), measured
+    The figures follow the definitions of IEEE Std 1241-2010 (ADC test methods; SNR, SINAD and
+    ENOB under its noise clause 8, THD and SFDR under its distortion clause 9, clause numbers
+    from memory), measured
     with the DFT method on a Welch spectrum (mean of windowed periodograms, default
     4-term Blackman-Harris, whose side lobes lie 92 dB down):
 
