@@ -526,3 +526,13 @@ def test_measurement_errors():
         qm.analyze(noise, "qpsk", symbol_rate=RS)
     with pytest.raises(ValueError, match="scheme="):
         qm.analyze(cap, "qam", symbol_rate=RS)
+
+
+@pytest.mark.parametrize("scheme", qm.SCHEMES)
+def test_fast_slicers_equal_nearest_point(scheme):
+    # the per-axis slicers against brute-force nearest-point search (numpy argmin)
+    rng = np.random.default_rng(13)
+    pts = qm._points(scheme)
+    y = (rng.standard_normal(5000) + 1j * rng.standard_normal(5000)) * 0.8
+    brute = pts[np.argmin(np.abs(y[:, None] - pts[None, :]), axis=1)]
+    np.testing.assert_allclose(qm._decide(y, pts, scheme), brute, atol=1e-12)

@@ -549,7 +549,24 @@ def _trim(y: np.ndarray, points: np.ndarray, sigma2: float) -> tuple[int, int]:
     return i0, y.size - j
 
 
-def _decide(y: np.ndarray, points: np.ndarray) -> np.ndarray:
+def _decide(y: np.ndarray, points: np.ndarray, scheme: str = "") -> np.ndarray:
+    """Nearest constellation point of each of ``y``.
+
+    Square QAM and QPSK are sliced per axis (levels +-1, +-3, ... over sqrt(norm)), BPSK on
+    its diagonal; the result equals the nearest of ``points``.
+    """
+    norm = {"qpsk": 2.0, "16qam": 10.0, "64qam": 42.0, "256qam": 170.0}.get(scheme)
+    if norm is not None:
+        top = math.isqrt(points.size) - 1
+        scale = math.sqrt(norm)
+
+        def axis(v: np.ndarray) -> np.ndarray:
+            return np.clip(2 * np.floor(v * scale / 2) + 1, -top, top) / scale
+
+        return axis(y.real) + 1j * axis(y.imag)
+    if scheme in ("bpsk", "pi/2-bpsk"):
+        diag = (1 + 1j) / math.sqrt(2)
+        return np.where((y * np.conj(diag)).real >= 0, diag, -diag)
     out = np.empty_like(y)
     block = max(1, 2 ** 20 // points.size)
     for s in range(0, y.size, block):
@@ -646,8 +663,8 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     def decide(y: np.ndarray, ix: np.ndarray) -> np.ndarray:
         if pi2:
             rr = parity_rot(ix)
-            return _decide(y * np.conj(rr), pts) * rr
-        return _decide(y, pts)
+            return _decide(y * np.conj(rr), pts, scheme) * rr
+        return _decide(y, pts, scheme)
 
     def normalise(sel: slice, nu: float, gain: complex, dc: complex) -> np.ndarray:
         return (z[sel] - dc * dc_reg[sel]) / (gain * np.exp(2j * np.pi * nu * idx[sel]))
