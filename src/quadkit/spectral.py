@@ -988,7 +988,6 @@ def _check_band(spec, func, lo, hi, what):
 def _channel_result(spec, variables, extra_attrs):
     if "channel" in spec.dims:
         coords = {"channel": spec.channel.values}
-        variables = {k: (v if v.ndim else v) for k, v in variables.items()}
     else:
         coords = None
     return result(variables, coords=coords, attrs=extra_attrs)
@@ -1362,8 +1361,8 @@ def tone_quality(
             k1, delta1 = _bin_of(_fold(f_off, fs, onesided), off[0], df, nf, circular)
         # First pass for a rough noise level under the components: the median of free bins.
         rough = float(np.median(p[~used])) / _floor_bias(spec)
-        zero_floor = np.full(nf, rough)
-        idx1, d1, frac1 = _component(p, zero_floor, k1, window, nper, circular, delta1)
+        rough_floor = np.full(nf, rough)
+        idx1, d1, frac1 = _component(p, rough_floor, k1, window, nper, circular, delta1)
         f1_off = off[k1] + d1 * df
         used[idx1] = True
         # Bins where the fundamental's leakage (window side lobes, from the closed-form
@@ -1383,7 +1382,7 @@ def tone_quality(
             for s in signs:
                 fh = _fold(s * h * f1_off, fs, onesided)
                 kh, dh = _bin_of(fh, off[0], df, nf, circular)
-                idx, _, frac = _component(p, zero_floor, kh, window, nper, circular, dh)
+                idx, _, frac = _component(p, rough_floor, kh, window, nper, circular, dh)
                 idx = idx[~used[idx]]
                 if idx.size == 0:
                     continue
