@@ -796,21 +796,31 @@ def analyze(
     Works blind: the carrier frequency offset (up to ``max_offset_hz``), carrier phase,
     symbol timing and gain are unknown. The steps, per channel:
 
-    1. Burst detection by energy. When the capture holds silence (the power averaged over four
-       symbols varies by more than 10 dB), only the longest burst is analysed and its span
-       reported (``burst_start_s``, ``burst_duration_s``, attr ``burst``); otherwise the whole
-       capture is analysed, less 8 symbols at each end.
-    2. Coarse carrier frequency from the line of the M-th power (M = 2 for BPSK, 4 for
-       pi/2-BPSK, QPSK and square QAM) of the matched-filter output at four samples per
-       symbol (Mengali & D'Andrea).
-    3. Symbol timing from the symbol-rate line of the squared magnitude (Oerder & Meyr) and
-       RRC matched filtering evaluated at the exact symbol instants (any sample-rate to
-       symbol-rate ratio).
-    4. Fine frequency and phase: M-th power of the symbols, then decision-directed (or
-       data-aided with ``reference``) maximum-likelihood fits, jointly with a complex gain
-       (normalising to the constellation's mean energy) and the IQ origin offset.
-    5. EVM per 3GPP TS 38.104 / TS 38.101-2 Annex F: rms error vector over the rms of the ideal
+    1. Burst detection by energy. When the capture holds silence (the power averaged over 16
+       symbols varies by more than 10 dB) the longest burst, with a margin, is kept;
+       otherwise the whole capture, less the matched filter's half span at its edges.
+    2. Symbol timing from the symbol-rate line of the squared magnitude of the RRC
+       matched-filter output (Oerder & Meyr), which does not depend on the carrier.
+    3. Coarse carrier frequency from the line of the M-th power of the symbols (M = 2 for
+       BPSK and for pi/2-BPSK rotated back, 4 for QPSK and square QAM; Mengali & D'Andrea),
+       searched within ``max_offset_hz``; then the timing again on the derotated capture and
+       the symbols by matched filtering evaluated at the exact symbol instants (any ratio of
+       sample rate to symbol rate, no interpolation).
+    4. Fine frequency and phase: M-th power of the symbols, a search of the phase ambiguity
+       interval, then decision-directed maximum-likelihood fits over windows growing from
+       the middle of the burst, jointly with a complex gain (normalising to the
+       constellation's mean energy) and the IQ origin offset.
+    5. The burst's first and last symbols by a likelihood-ratio change-point test (symbol or
+       noise), so that only the burst is analysed (reported as ``burst_start_s``,
+       ``burst_duration_s`` and the attr ``burst``). With ``reference`` the transmitted
+       symbols are aligned and the fits are repeated data-aided.
+    6. EVM per 3GPP TS 38.104 / TS 38.101-2 Annex F: rms error vector over the rms of the ideal
        symbols; MER = -20 log10(EVM).
+
+    There is no symbol-timing tracking: a sample-clock offset between transmitter and
+    capture makes the timing drift across a long burst and raises the EVM. Blind carrier
+    recovery needs the M-th power line above the noise (QPSK from about 3 dB Es/N0 with a
+    thousand symbols, 16-QAM from about 8 dB), otherwise a MeasurementError says so.
 
     Decision-directed EVM under-reads at low SNR (errors past a decision boundary are
     measured to the wrong point); give ``reference`` for data-aided figures.
