@@ -660,3 +660,14 @@ def test_spectrum_measures_per_channel_and_lazy():
     tone = synth.tone(-77e3, sample_rate=FS, n_samples=2**14, amplitude=0.25)
     t = tone.qk.find_peaks(nperseg=1024)
     assert float(t.power_dbfs[0]) == pytest.approx(20 * np.log10(0.25), abs=0.01)
+
+
+@pytest.mark.parametrize("name", sorted(HARRIS))
+def test_window_sums_closed_form(name):
+    # sum w = N a0 and sum w^2 = N (a0^2 + sum a_m^2 / 2) for a periodic cosine sum
+    # (orthogonality of the DFT cosines); checked against the sampled window.
+    for n in (3, 8, 257, 4096):
+        w = ss.get_window(SCIPY_NAMES[name], n)
+        s1, s2 = spectral._window_sums(name, n)
+        assert s1 == pytest.approx(w.sum(), rel=1e-12, abs=1e-12)
+        assert s2 == pytest.approx(np.sum(w**2), rel=1e-12)
