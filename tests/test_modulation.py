@@ -8,7 +8,6 @@ definition), and the Cramer-Rao bound of a tone's frequency (Rife & Boorstyn 197
 
 from __future__ import annotations
 
-import itertools
 import json
 import math
 
@@ -85,11 +84,9 @@ def point(c, bits):
 def awgn(cap, es_n0_db, rng, *, power=1.0):
     """Complex white Gaussian noise (numpy) for a symbol SNR Es/N0: the per-sample variance is
     power * (fs / Rs) / SNR, since the matched filter keeps 1/sps of the white noise."""
-    n = cap.shape[-1]
     sps = cap.attrs["sample_rate"] / cap.attrs["symbol_rate"]
     var = power * sps / 10 ** (es_n0_db / 10)
     w = (rng.standard_normal(cap.shape) + 1j * rng.standard_normal(cap.shape)) * math.sqrt(var / 2)
-    del n
     return cap + w.astype(cap.dtype)
 
 

@@ -46,9 +46,10 @@ Scheme = Literal["bpsk", "pi/2-bpsk", "qpsk", "16qam", "64qam", "256qam"]
 #: Schemes known to :func:`constellation`, :func:`modulate` and :func:`analyze`.
 SCHEMES = ("bpsk", "pi/2-bpsk", "qpsk", "16qam", "64qam", "256qam")
 _BITS = {"bpsk": 1, "pi/2-bpsk": 1, "qpsk": 2, "16qam": 4, "64qam": 6, "256qam": 8}
-# Blind carrier recovery raises the signal to this power to strip the modulation
-# (Mengali & D'Andrea 1997, memory): 2 for BPSK, 4 for the quadrant-symmetric sets.
-_POWER = {"bpsk": 2, "pi/2-bpsk": 4, "qpsk": 4, "16qam": 4, "64qam": 4, "256qam": 4}
+# Blind carrier recovery raises the symbols to this power to strip the modulation
+# (Mengali & D'Andrea 1997, memory): 2 for BPSK (pi/2-BPSK once rotated back), 4 for the
+# quadrant-symmetric sets.
+_POWER = {"bpsk": 2, "pi/2-bpsk": 2, "qpsk": 4, "16qam": 4, "64qam": 4, "256qam": 4}
 
 _MF_SPAN = 32  # matched-filter span (symbols) for the symbols themselves
 _EST_SPAN = 8  # shorter span while estimating frequency and timing
@@ -607,7 +608,7 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
         )
     pts = _points(scheme)
     pi2 = scheme == "pi/2-bpsk"
-    m_pow = 2 if scheme in ("bpsk", "pi/2-bpsk") else 4
+    m_pow = _POWER[scheme]
 
     def instants(sig: np.ndarray) -> np.ndarray:
         # Symbol timing from the symbol-rate line of the squared magnitude of the matched
@@ -798,7 +799,7 @@ def analyze(
 
     1. Burst detection by energy. When the capture holds silence (the power averaged over 16
        symbols varies by more than 10 dB) the longest burst, with a margin, is kept;
-       otherwise the whole capture, less the matched filter's half span at its edges.
+       otherwise the whole capture, less 8 symbols at each edge.
     2. Symbol timing from the symbol-rate line of the squared magnitude of the RRC
        matched-filter output (Oerder & Meyr), which does not depend on the carrier.
     3. Coarse carrier frequency from the line of the M-th power of the symbols (M = 2 for
