@@ -430,6 +430,10 @@ def psd(
         Mean of the segment periodograms (Welch), their median (divided by the median's bias
         for exponential noise, so that noise reads at its mean level; a steady tone then reads
         high by the same factor, recorded in attr ``median_bias``), or the maximum (max-hold).
+        The median needs every periodogram at once (float32, nperseg values per segment;
+        for a lazy capture they are regrouped by frequency, not by time), so it costs about
+        as much memory as the capture itself at 50 % overlap; mean and max-hold cost one
+        spectrum per chunk.
     scaling : {"density", "power"}
         ``"density"``: power spectral density in dBFS/Hz (a bin is |X|^2 / (fs sum w^2));
         ``"power"``: power per bin in dBFS (|X|^2 / (sum w)^2), so a tone's peak is its power.
@@ -1298,7 +1302,8 @@ def tone_quality(
       capture both +h f0 and -h f0, wrapped into [-fs/2, fs/2)); a harmonic that lands on
       the fundamental, DC or an earlier harmonic is not counted twice;
     - DC (the main lobe around 0 Hz) is excluded, as the four-parameter sine fit of the
-      standard removes the offset;
+      standard removes the offset; for a complex capture the image at -f0 (quadrature
+      imbalance) is not a harmonic: it counts as a spur (SFDR) and as noise;
     - noise: the mean density of all remaining bins times the whole band (fs for complex,
       fs/2 for real), so excluded bins count at the noise level;
     - SNR = P1 / P_noise, SINAD = P1 / (P_noise + P_harmonics), THD = P_harmonics / P1,
