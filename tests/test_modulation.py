@@ -533,3 +533,23 @@ def test_fast_slicers_equal_nearest_point(scheme):
     y = (rng.standard_normal(5000) + 1j * rng.standard_normal(5000)) * 0.8
     brute = pts[np.argmin(np.abs(y[:, None] - pts[None, :]), axis=1)]
     np.testing.assert_allclose(qm._decide(y, pts, scheme), brute, atol=1e-12)
+
+
+def test_reference_aligned_to_a_capture_cut_inside_the_burst():
+    # The capture starts 600 symbols into a 2000-symbol burst (and runs to its end): the
+    # reference (all transmitted bits) is aligned by cross-correlation and only the overlap is
+    # analysed; EVM = 1/sqrt(SNR) as in the AWGN test above.
+    rng = np.random.default_rng(14)
+    bits, cap = burst("qpsk", 2000, rng, offset_hz=8e3, phase_rad=0.9)
+    cut = cap.isel(time=slice(int((16 + 600) * 4), None))
+    noisy = awgn(quadkit.capture(cut.values, sample_rate=FS, symbol_rate=RS), 25.0, rng)
+    res = qm.analyze(noisy, "qpsk", symbol_rate=RS, reference=bits)
+    # 1400 symbols remain, less the 8 symbols kept clear of the capture's first edge
+    assert 1400 - 10 <= int(res.symbol_count) <= 1400
+    tol = 4 / (2 * math.sqrt(int(res.symbol_count)))
+    expected = math.hypot(100 / math.sqrt(10 ** 2.5), _isi_floor_percent())
+    assert float(res.evm_rms_percent) == pytest.approx(expected, rel=tol)
+    # the ideal symbols are the transmitted ones (up to the carrier phase ambiguity, removed
+    # by the alignment): compare with the 38.211 mapping of the last symbol_count symbols
+    sent = qm._as_symbols("test", bits, "qpsk")
+    np.testing.assert_allclose(res.ideal_symbol.values, sent[-int(res.symbol_count):], atol=1e-12)
