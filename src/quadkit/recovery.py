@@ -422,7 +422,7 @@ def _finish_complex(mom: np.ndarray, ratio: np.ndarray, n: int, centre: float, f
     resid = np.maximum(energy - np.abs(y) ** 2 / n, 0.0)
     noise = resid / max(n - 2, 1)
     phase_c = np.angle(y)
-    phase0 = phase_c - 2 * np.pi * ((ratio * centre + 0.5) % 1.0 - 0.5)
+    phase0 = np.angle(np.exp(1j * phase_c) * np.conj(_unit_phasor(ratio, centre)))
     # normalised periodogram |Y|^2 / (N sigma^2) = N A^2 / sigma^2, Exp(1) per bin for noise
     out = _common(amp, phase_c, phase0, ratio, resid, noise, amp ** 2, n, fs, check,
                   n * amp ** 2, func)
@@ -449,7 +449,7 @@ def _finish_real(gram: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs:
         theta = np.array([a, b, c])
         resid[ch] = max(g[5, 5] - 2 * theta @ g[:3, 5] + theta @ g[:3, :3] @ theta, 0.0)
     noise = resid / max(n - 4, 1)
-    phase0 = phase_c - 2 * np.pi * ((ratio * centre + 0.5) % 1.0 - 0.5)
+    phase0 = np.angle(np.exp(1j * phase_c) * np.conj(_unit_phasor(ratio, centre)))
     # normalised periodogram of a real record: |sum x e^{-jwn}|^2 / (N sigma^2) = N A^2 / 4
     out = _common(amp, phase_c, phase0, ratio, resid, noise, amp ** 2 / 2, n, fs, check,
                   n * amp ** 2 / 4, func)
