@@ -341,8 +341,10 @@ def _coarse(spec: np.ndarray, real: bool, hint: np.ndarray | None, window_bins: 
         allowed = np.ones(length, bool)
         if real:
             allowed &= (freqs >= 0) | (freqs == -0.5)
-            allowed &= np.abs(freqs) * length > 2  # DC and its Hann leakage are no tone
-            allowed &= np.abs(freqs) * length < length / 2 - 1 if length > 8 else allowed
+            if hint is None:  # DC and its Hann leakage are no tone (unless asked for)
+                allowed &= np.abs(freqs) * length > 2
+                if length > 8:
+                    allowed &= np.abs(freqs) * length < length / 2 - 1
         if hint is not None:
             dist = np.abs((freqs - hint[ch] + 0.5) % 1.0 - 0.5) * length
             allowed &= dist <= window_bins
@@ -416,6 +418,7 @@ def _gauss_newton(gram: np.ndarray, ratio: np.ndarray, scale: float) -> np.ndarr
 
 def _finish_complex(mom: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs: float,
                     check: bool, func: str) -> dict:
+    ratio = (np.asarray(ratio) + 0.5) % 1.0 - 0.5  # a tone at the band edge folds into it
     y = mom[:, 0]
     energy = mom[:, 3].real
     amp = np.abs(y) / n
@@ -451,14 +454,18 @@ def _finish_real(gram: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs:
     noise = resid / max(n - 4, 1)
     phase0 = np.angle(np.exp(1j * phase_c) * np.conj(_unit_phasor(ratio, centre)))
     # normalised periodogram of a real record: |sum x e^{-jwn}|^2 / (N sigma^2) = N A^2 / 4
+    l1 = _sizes(n)[0]
+    note = (f"; a real capture is searched between {2 * fs / l1:.6g} Hz and "
+            f"{fs / 2 - fs / l1:.6g} Hz offset only (clear of DC and Nyquist): give "
+            "frequency_hz for a tone outside that range")
     out = _common(amp, phase_c, phase0, ratio, resid, noise, amp ** 2 / 2, n, fs, check,
-                  n * amp ** 2 / 4, func)
+                  n * amp ** 2 / 4, func, note)
     out["dc"] = dc
     return out
 
 
 def _common(amp, phase_c, phase0, ratio, resid, noise, power, n, fs, check, integrated,
-            func) -> dict:
+            func, note="") -> dict:
     if check:
         need = math.log(n) + math.log(1 / _PFA)
         with np.errstate(divide="ignore"):
@@ -468,7 +475,8 @@ def _common(amp, phase_c, phase0, ratio, resid, noise, power, n, fs, check, inte
                 f"{func}: no tone above the noise (channel {ch}): the strongest line, at "
                 f"{ratio[ch] * fs:.6g} Hz offset, has an integrated SNR of "
                 f"{10 * math.log10(max(got[ch], 1e-30)):.1f} dB over {n} samples; at least "
-                f"{10 * math.log10(need):.1f} dB is needed (false-alarm probability {_PFA:g})")
+                f"{10 * math.log10(need):.1f} dB is needed (false-alarm probability {_PFA:g})"
+                + note)
     if not np.all(np.isfinite(amp)) or not np.all(np.isfinite(phase0)):
         raise MeasurementError(f"{func}: the fit gave a non-finite result")
     wrapped0 = (phase0 + np.pi) % (2 * np.pi) - np.pi
@@ -629,9 +637,10 @@ def measure_tone(cap: xr.DataArray, frequency_hz: float | None = None, *,
         lazy (dask; reduced chunk by chunk, any chunking, the result is lazy too).
     frequency_hz : float, optional
         Absolute frequency (``center_frequency`` + offset) of the tone to measure. ``None``
-        (default) measures the strongest line (for a real capture the strongest away from DC
-        and Nyquist). When given, the tone is looked for within three Welch bins
-        (``3 fs / L1``, ``L1`` = 4 x the fine segment, at most ``N``) of it.
+        (default) measures the strongest line (for a real capture the strongest between
+        ``2 fs / L1`` and ``fs / 2 - fs / L1``, clear of DC and Nyquist; ``L1`` is the Welch
+        segment, 4096 samples for most lengths, at most ``N``). When given, the tone is
+        looked for within three Welch bins (``3 fs / L1``) of it, anywhere in the band.
     refine : bool
         With ``frequency_hz`` given: ``True`` (default) estimates the tone's frequency near
         it; ``False`` measures amplitude and phase exactly at ``frequency_hz`` (a coherent,
