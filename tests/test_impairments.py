@@ -704,5 +704,5 @@ def test_lazy_graphs_pickle_and_run_on_a_cluster():
             distributed.Client(cluster):
         est = impairments.estimate(bad)
         got = fixed.compute()
-    assert float(est.gain_imbalance_db) == pytest.approx(0.6, abs=1e-3)
+    assert abs(float(est.gain_imbalance_db) - 0.6) <= 4.5 * float(est.gain_imbalance_db_uncertainty)
     np.testing.assert_allclose(got.values, eager.values, atol=1e-6)

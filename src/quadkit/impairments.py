@@ -697,24 +697,25 @@ def _block_ls(proj: np.ndarray, edges: np.ndarray, ratios: np.ndarray) -> np.nda
         ) from None
 
 
-def _tone_amplitudes(x2, ratios: np.ndarray, edges: np.ndarray, fs_: float):
-    """Block LS amplitudes of tones at ``ratios`` (refined once from the block phases).
+def _tone_amplitudes(x2, ratios: np.ndarray, n: int, fs_: float):
+    """Block LS amplitudes of tones at ``ratios``, after one refinement of the frequencies.
 
-    The first pass's tone phasors advance from block to block by 2 pi dr L for a ratio
-    error dr; one correction makes the tones coherent over each block to ~1e-6 cycles.
-    Returns (ratios, amplitudes (channel, blocks, 2K + 1) in units of full scale).
+    Pass 1 fits 4096-sample blocks; a tone phasor advancing by 2 pi dr L from block to block
+    reveals a ratio error dr, which is removed. Pass 2 fits the final blocks: 64 of them (at
+    least 1024 samples each), so the jackknife has enough blocks for a steady uncertainty.
+    Returns (ratios, amplitudes (channel, blocks, 2K + 1) in units of full scale, edges).
     """
     k = ratios.shape[1]
-    length = float(edges[1] - edges[0])
-    for _ in range(2):
-        proj = _blockwise(x2, _projection_sums, (edges.size - 1) * (2 * k + 1), edges, ratios)
-        amp = _block_ls(proj, edges, ratios) / fs_
-        tone = amp[..., :k]
-        if edges.size < 4:
-            break
+    edges = _block_edges(n, _SEARCH_LEN)
+    proj = _blockwise(x2, _projection_sums, (edges.size - 1) * (2 * k + 1), edges, ratios)
+    tone = (_block_ls(proj, edges, ratios) / fs_)[..., :k]
+    if edges.size >= 4:
         lag = np.sum(tone[:, 1:-1] * np.conj(tone[:, :-2]), axis=1)  # full blocks only
-        ratios = ratios + np.angle(lag) / (2.0 * np.pi * length)
-    return ratios, amp
+        ratios = ratios + np.angle(lag) / (2.0 * np.pi * _SEARCH_LEN)
+    final = max(1024, 1 << math.ceil(math.log2(max(n / 64.0, 1.0))))
+    edges = _block_edges(n, final)
+    proj = _blockwise(x2, _projection_sums, (edges.size - 1) * (2 * k + 1), edges, ratios)
+    return ratios, _block_ls(proj, edges, ratios) / fs_, edges
 
 
 def _search_spectrum(head: np.ndarray) -> np.ndarray:
@@ -824,10 +825,9 @@ def _imbalance_sums(func, x2, cap, method):
             "DC and from fs/2; none was found"
         )
     ratios = ratios[:, None]
-    edges = _block_edges(n, _SEARCH_LEN)
-    if edges.size - 1 < 4:
+    if n < 4 * _SEARCH_LEN:
         raise MeasurementError(f"{func}: method='tone' needs at least {4 * _SEARCH_LEN} samples")
-    ratios, amp = _tone_amplitudes(x2, ratios, edges, fs_)  # (ch, blocks, 3): tone, image, dc
+    ratios, amp, edges = _tone_amplitudes(x2, ratios, n, fs_)  # (ch, blocks, 3): tone, image, dc
     counts = np.diff(edges).astype(float)[None, :]
     sums = np.stack([amp[..., 1] * amp[..., 0], np.abs(amp[..., 0]) ** 2 + 0j,
                      amp[..., 2] * counts, counts + 0j * amp[..., 2], np.abs(amp[..., 1]) ** 2 + 0j,
@@ -849,16 +849,16 @@ def estimate(cap: xr.DataArray, *, method: Literal["auto", "blind", "tone"] = "a
         signal (BPSK or another real-valued modulation, a tone with a tone at its mirror
         frequency) biases it.
     ``"tone"``
-        From a test tone and its image: per block of 4096 samples the tone c+, its image c-
-        and DC are fitted by least squares; r = c- / conj(c+) = nu / conj(mu) gives
+        From a test tone and its image: per block the tone c+, its image c- and DC are
+        fitted by least squares; r = c- / conj(c+) = nu / conj(mu) gives
         ``g e^{j phi} = (1 - r) / (1 + r)`` exactly (a small error in the tone frequency
         cancels in the ratio).
     ``"auto"``
         ``"tone"`` when, in every channel, one spectral line away from DC holds more than
         half of the power; else ``"blind"``. The choice is in the ``method`` attr.
 
-    Uncertainties are one standard deviation by leave-one-block-out jackknife (64 blocks for
-    the blind method, 4096-sample blocks for the tone method). The capture is read chunk by
+    Uncertainties are one standard deviation by leave-one-block-out jackknife over 64 blocks
+    (blocks of at least 1024 samples for the tone method). The capture is read chunk by
     chunk (moment sums), once, plus its first 2**18 samples to look for a tone.
 
     Parameters
@@ -1155,8 +1155,8 @@ def image_rejection_vs_frequency(
 ) -> xr.Dataset:
     """Image rejection across the band from a multitone or a chirp, and a WL FIR compensator.
 
-    Each test tone at f and its image at -f are fitted by least squares per 4096-sample
-    block (with DC and all other tones); ``r(f) = c-(-f) / conj(c+(f))`` gives the image
+    Each test tone at f and its image at -f are fitted by least squares per block (64 blocks
+    of at least 1024 samples, with DC and all other tones); ``r(f) = c-(-f) / conj(c+(f))`` gives the image
     rejection ``-20 log10 |r|`` at the tone's frequency, and the flat imbalance that would give
     the same image (``g e^{j phi} = (1 - r) / (1 + r)``). Use tones that are not mirror
     images of one another.
@@ -1267,8 +1267,7 @@ def _multitone_sums(func, x2, n, fs, fs_, offsets_hz):
         raise MeasurementError(f"{func}: no test tones away from DC were found")
     ratios = np.array([[_peak_ratio(row, int(b)) for b in bins] for row in spec])
     k = ratios.shape[1]
-    edges = _block_edges(n, _SEARCH_LEN)
-    ratios, amp = _tone_amplitudes(x2, ratios, edges, fs_)
+    ratios, amp, edges = _tone_amplitudes(x2, ratios, n, fs_)
     tone, image, dc = amp[..., :k], amp[..., k:2 * k], amp[..., 2 * k]
     counts = np.diff(edges).astype(float)[None, :]
     sums = np.concatenate([image * tone, np.abs(tone) ** 2 + 0j, np.abs(image) ** 2 + 0j,
