@@ -671,3 +671,26 @@ def test_window_sums_closed_form(name):
         s1, s2 = spectral._window_sums(name, n)
         assert s1 == pytest.approx(w.sum(), rel=1e-12, abs=1e-12)
         assert s2 == pytest.approx(np.sum(w**2), rel=1e-12)
+
+
+def test_find_peaks_lists_tones_not_the_top_of_a_noise_carrier():
+    # A band-limited noise carrier 60 dB above the floor has a flat top whose bins fluctuate
+    # (Welch averaging); none of them is a tone. A tone 15 dB above that top still is one.
+    # Shape criterion: tone leakage one bin past the Hann main lobe is ~31 dB down (Harris 1978).
+    fs, n = 4e6, 2**18
+    carrier = quadkit.synth.noise(sample_rate=fs, n_samples=n, bandwidth_hz=200e3, rng=7,
+                                  power_dbfs=-20)
+    floor = quadkit.synth.noise(sample_rate=fs, n_samples=n, power_dbfs=-90, rng=8)
+    x = carrier.values + floor.values
+    cap = quadkit.capture(x, sample_rate=fs)
+    t = spectral.find_peaks(spectral.psd(cap, nperseg=4096), threshold_db=10)
+    assert t.sizes["tone"] == 0
+    # density of the carrier top: -20 dBFS over 200 kHz; a tone whose power is that density
+    # times 15 dB times the RBW (1.5 bins of fs/4096) stands 15 dB above the top
+    rbw = 1.5 * fs / 4096
+    amp = np.sqrt(10 ** (-20 / 10) / 200e3 * rbw * 10 ** 1.5)
+    tone = quadkit.synth.tone(30e3, sample_rate=fs, n_samples=n, amplitude=amp)
+    t = spectral.find_peaks(spectral.psd(quadkit.capture(x + tone.values, sample_rate=fs),
+                                         nperseg=4096), threshold_db=10)
+    assert t.sizes["tone"] == 1
+    assert float(t.offset_hz[0]) == pytest.approx(30e3, abs=fs / 4096 / 10)

@@ -823,6 +823,29 @@ def _component(lin, floor, k, window, nper, circular, delta=None):
     return idx, float(delta), float(frac)
 
 
+#: A tone stands this much (power ratio, 6 dB) above the spectrum just outside its main lobe.
+_TONE_SHAPE_RATIO = 4.0
+
+
+def _tone_shaped(p: np.ndarray, floor: float, k: int, lobe: int, circular: bool) -> bool:
+    """True if the peak at bin k falls off beyond its main lobe, as a steady tone does.
+
+    The shoulders are the bins 1 and 2 past the main lobe (lobe + 1, lobe + 2) on each side. A
+    tone's window leakage there is at least 13 dB down (rectangular side lobe, Harris 1978),
+    30 dB and more for the other windows; the flat top of a noise-like carrier is not.
+    """
+    nf = p.size
+    idx = np.array([k - lobe - 2, k - lobe - 1, k + lobe + 1, k + lobe + 2])
+    if circular:
+        idx %= nf
+    else:
+        idx = idx[(idx >= 0) & (idx < nf)]
+    if idx.size == 0:
+        return True
+    shoulder = float(np.max(p[idx])) - floor
+    return (p[k] - floor) > _TONE_SHAPE_RATIO * max(shoulder, 0.0)
+
+
 def find_peaks(
     spectrum: xr.DataArray,
     *,
@@ -835,7 +858,11 @@ def find_peaks(
     A peak is a local maximum at least ``threshold_db`` above the local noise floor (a running
     median over an eighth of the band, at least 33 and at most 513 bins, bias-corrected as in
     :func:`noise_floor`) and above the predicted leakage (window side lobes) of every stronger
-    peak already accepted, at more than a main-lobe half width from it. For each peak:
+    peak already accepted, at more than a main-lobe half width from it. It must also be shaped
+    like a tone: 6 dB or more above the spectrum one and two bins past its main lobe on both
+    sides, so the flat top of a noise-like or modulated carrier is not listed as tones (a tone
+    sitting on such a carrier still is). Two tones closer than about three main-lobe half widths
+    may hide the weaker one: ask for a finer ``rbw_hz``. For each peak:
 
     - the frequency is interpolated from the ratio of the two largest bins, inverted through
       the window's exact transform (exact for a steady tone whatever its offset in the bin);
@@ -921,6 +948,8 @@ def find_peaks(
                     break
                 leak += pw * abs(_window_dtft(window, nper, d)) ** 2 / (fs * sumw2)
             if too_close or not p[k] > thr * (fl[k] + leak):
+                continue
+            if not _tone_shaped(p, fl[k], int(k), L, circular):
                 continue
             idx, delta, frac = _component(pt, fl, int(k), window, nper, circular)
             power = float(np.sum(pt[idx] - fl[idx]) * df / frac)
