@@ -212,3 +212,27 @@ def test_the_widget_holds_bokeh_models_and_rejects_real_captures():
     assert sum(isinstance(w, BokehModel) for w in walk(ex)) == 5
     with pytest.raises(ValueError, match="downconvert"):
         widgets.explore(quadkit.synth.tone(1e3, sample_rate=1e5, n_samples=1000, real=True))
+
+
+def test_in_a_kernel_the_debounced_recompute_runs_on_its_event_loop():
+    # A real ipykernel (the venv's python3): the recompute is scheduled on the kernel's
+    # asyncio loop (no thread touches the widgets) and runs once the kernel is idle.
+    nbformat = pytest.importorskip("nbformat")
+    nbclient = pytest.importorskip("nbclient")
+    from nbformat.v4 import new_code_cell, new_notebook
+
+    cells = [
+        "import quadkit\nfrom quadkit import widgets\n"
+        "cap = quadkit.synth.tone(1e5, sample_rate=1e6, n_samples=2**14)\n"
+        "ex = widgets.explore(cap, debounce_s=0.2)\nn0 = ex.recomputes\n"
+        "ex.offset.value = 1e5\nex.offset.value = 2e5\n"
+        "print(type(ex.explorer._debounced._handle).__name__, ex.recomputes - n0)",
+        "import asyncio\nawait asyncio.sleep(1.0)",
+        "print(ex.recomputes - n0, ex.pending, ex.channel_capture.attrs['center_frequency'])",
+    ]
+    book = new_notebook(cells=[new_code_cell(c) for c in cells])
+    nbclient.NotebookClient(book, timeout=300, kernel_name="python3").execute()
+    first = book.cells[0].outputs[0]["text"].split()
+    assert first == ["TimerHandle", "0"]  # pending on the loop, nothing run yet
+    last = book.cells[2].outputs[0]["text"].split()
+    assert last == ["1", "False", "200000.0"]  # one recompute, with the last value
