@@ -553,3 +553,24 @@ def test_reference_aligned_to_a_capture_cut_inside_the_burst():
     # by the alignment): compare with the 38.211 mapping of the last symbol_count symbols
     sent = qm._as_symbols("test", bits, "qpsk")
     np.testing.assert_allclose(res.ideal_symbol.values, sent[-int(res.symbol_count):], atol=1e-12)
+
+
+def test_symbol_clock_error_is_tracked():
+    # A transmitter whose symbol clock runs 100 ppm fast: over 3000 symbols the timing drifts
+    # by 0.3 T, which fixed timing would turn into ~10 % EVM. The fitted drift recovers the
+    # clock error; its std from 23 blocks of 128 symbols with ~0.01 T timing noise each is
+    # ~0.01 * sqrt(12 / 23) / 3000 = 2.4 ppm, so 10 ppm is 4 sigma; the EVM is then that of
+    # the noise (AWGN reference, tolerance as above plus 5 % for the residual timing jitter).
+    rng = np.random.default_rng(15)
+    k, n = 4, 3000
+    bits = rng.integers(0, 2, k * n)
+    cap = qm.modulate(bits, "16qam", symbol_rate=RS * (1 + 100e-6), sample_rate=FS,
+                      power_dbfs=0, offset_hz=12e3)
+    noisy = awgn(quadkit.capture(cap.values, sample_rate=FS, symbol_rate=RS), 25.0, rng)
+    res = qm.analyze(noisy, "16qam", symbol_rate=RS, reference=bits)
+    assert float(res.symbol_rate_error_ppm) == pytest.approx(100.0, abs=10.0)
+    expected = math.hypot(100 / math.sqrt(10 ** 2.5), _isi_floor_percent())
+    assert float(res.evm_rms_percent) == pytest.approx(expected, rel=4 / (2 * math.sqrt(n)) + 0.05)
+    # and without a clock error no drift is reported (the 4-sigma significance test)
+    _, plain = burst("16qam", n, rng)
+    assert float(qm.analyze(plain, "16qam", symbol_rate=RS).symbol_rate_error_ppm) == 0.0

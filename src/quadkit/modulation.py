@@ -610,7 +610,7 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     pi2 = scheme == "pi/2-bpsk"
     m_pow = _POWER[scheme]
 
-    def instants(sig: np.ndarray) -> np.ndarray:
+    def instants(sig: np.ndarray) -> tuple[np.ndarray, float]:
         # Symbol timing from the symbol-rate line of the squared magnitude of the matched
         # filter output (Oerder & Meyr 1988, memory); it does not depend on the carrier
         # phase. With >= 4 samples per symbol the output at every sample (FFT convolution)
@@ -622,21 +622,49 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
             taps = _rrc(np.arange(-half_taps, half_taps + 1) / sps, beta) / sps
             n0, n1 = int(math.ceil(u_lo)), int(math.floor(u_hi))
             r = fftconvolve(sig, taps, mode="same")[n0:n1 + 1]
-            pos = np.arange(n0, n1 + 1)
-            line = np.sum(np.abs(r) ** 2 * np.exp(-2j * np.pi * pos / sps))
-            first = -np.angle(line) / (2 * np.pi) * sps
+            pos = np.arange(n0, n1 + 1, dtype=np.float64)
         else:
-            grid = np.arange(u_lo, u_hi, sps / 4.0)
-            r = _mf_at(sig[None, :], grid, sps, beta, _EST_SPAN / 2)[0]
-            line = np.sum(np.abs(r) ** 2 * np.exp(-2j * np.pi * np.arange(grid.size) / 4))
-            first = grid[0] - np.angle(line) / (2 * np.pi) * sps
-        k_lo = math.ceil((u_lo - first) / sps)
-        k_hi = math.floor((u_hi - first) / sps)
-        return first + sps * np.arange(k_lo, k_hi + 1)
+            pos = np.arange(u_lo, u_hi, sps / 4.0)
+            r = _mf_at(sig[None, :], pos, sps, beta, _EST_SPAN / 2)[0]
+        terms = np.abs(r) ** 2 * np.exp(-2j * np.pi * pos / sps)
+        first = -np.angle(np.sum(terms)) / (2 * np.pi) * sps
+        period = sps
+        # A symbol clock off the nominal rate makes the timing phase drift linearly: measure
+        # it per block of 128 symbols and keep the drift if it is significant (> 4 sigma of
+        # its least-squares fit).
+        per_block = int(round(128 * sps / (pos[1] - pos[0]))) if pos.size > 1 else pos.size
+        n_blocks = pos.size // max(per_block, 1)
+        if n_blocks >= 4:
+            lines = terms[: n_blocks * per_block].reshape(n_blocks, per_block).sum(axis=1)
+            centres = pos[: n_blocks * per_block].reshape(n_blocks, per_block).mean(axis=1)
+            tau = np.unwrap(-np.angle(lines)) / (2 * np.pi) * sps  # samples, mod sps
+            design = np.stack((np.ones(n_blocks), centres), axis=1)
+            coef, res, *_ = np.linalg.lstsq(design, tau, rcond=None)
+            resid = tau - design @ coef
+            sigma2 = float(np.sum(resid ** 2)) / max(n_blocks - 2, 1)
+            var_slope = sigma2 / max(float(np.sum((centres - centres.mean()) ** 2)), 1e-300)
+            if coef[1] ** 2 > 16 * var_slope and abs(coef[1]) < 0.01:
+                # tau(n) = u0 + (n - u0) s: instants u0 + k sps / (1 - s)
+                period = sps / (1 - coef[1])
+                first_d = coef[0] / (1 - coef[1])
+                # keep the drift only if it raises the matched-filter output energy (the
+                # energy is largest at the right instants; OM self-noise can fake a drift)
+                cand = [grid_of(first, sps), grid_of(first_d, period)]
+                energy = [np.mean(np.abs(_mf_at(sig[None, :], c, sps, beta, _EST_SPAN / 2)) ** 2)
+                          for c in cand]
+                if energy[1] > energy[0]:
+                    return cand[1], period
+                period = sps
+        return grid_of(first, period), period
+
+    def grid_of(first: float, period: float) -> np.ndarray:
+        k_lo = math.ceil((u_lo - first) / period)
+        k_hi = math.floor((u_hi - first) / period)
+        return first + period * np.arange(k_lo, k_hi + 1)
 
     # 1. Timing, then the coarse carrier frequency from the line of the M-th power of the
     #    symbols (Mengali & D'Andrea 1997, memory); pi/2-BPSK is first rotated back to BPSK.
-    u = instants(x)
+    u, _ = instants(x)
     zc = _mf_at(x[None, :], u, sps, beta, _EST_SPAN / 2)[0]
     if pi2:
         zc = zc * np.conj(_pi2_rotation(zc.size))
@@ -653,7 +681,7 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     rot = oscillator(-df1 / fs, 0, n_x, np.complex128)
     x1 = np.stack((x * rot, rot))  # signal and the capture's DC, both derotated
     # 2. Timing again on the derotated signal, and the symbols with the full matched filter.
-    u = instants(x1[0])
+    u, period = instants(x1[0])
     z, dc_reg = _mf_at(x1, u, sps, beta, _MF_SPAN / 2)
     idx = np.arange(z.size)  # symbol index; pi/2-BPSK parity and the phase ramp use it
     m_ref = np.mean(pts ** m_pow)
@@ -776,6 +804,7 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
         "phase_error_rms_deg": math.sqrt(float(np.mean(phase_err ** 2))),
         "magnitude_error_rms_percent": math.sqrt(float(np.mean(mag_err ** 2))),
         "symbol_count": int(z.size),
+        "clock_ppm": (sps / period - 1) * 1e6,
         "burst": burst, "burst_start": u[0] / fs - 0.5 / rs, "burst_duration": z.size / rs,
         "measured": meas, "ideal": ideal, "evm": evm, "phase_err": phase_err,
         "mag_err": mag_err, "time": u / fs, "lag": lag,
@@ -801,7 +830,8 @@ def analyze(
        symbols varies by more than 10 dB) the longest burst, with a margin, is kept;
        otherwise the whole capture, less 8 symbols at each edge.
     2. Symbol timing from the symbol-rate line of the squared magnitude of the RRC
-       matched-filter output (Oerder & Meyr), which does not depend on the carrier.
+       matched-filter output (Oerder & Meyr), which does not depend on the carrier, with
+       its linear drift (see below).
     3. Coarse carrier frequency from the line of the M-th power of the symbols (M = 2 for
        BPSK and for pi/2-BPSK rotated back, 4 for QPSK and square QAM; Mengali & D'Andrea),
        searched within ``max_offset_hz``; then the timing again on the derotated capture and
@@ -818,8 +848,10 @@ def analyze(
     6. EVM per 3GPP TS 38.104 / TS 38.101-2 Annex F: rms error vector over the rms of the ideal
        symbols; MER = -20 log10(EVM).
 
-    There is no symbol-timing tracking: a sample-clock offset between transmitter and
-    capture makes the timing drift across a long burst and raises the EVM. Blind carrier
+    A symbol clock off ``symbol_rate`` (a sample-clock offset between transmitter and
+    capture) makes the timing drift linearly; the drift is measured per block of 128
+    symbols, kept when significant and when it raises the matched-filter output energy, and
+    reported as ``symbol_rate_error_ppm``. Faster timing wander is not tracked. Blind carrier
     recovery needs the M-th power line above the noise (QPSK from about 3 dB Es/N0 with a
     thousand symbols, 16-QAM from about 8 dB), otherwise a MeasurementError says so.
 
@@ -857,7 +889,9 @@ def analyze(
         baseband Hz), ``carrier_frequency_hz`` (absolute), ``iq_offset_db`` (origin offset
         power over the signal power), ``phase_error_rms_deg``,
         ``magnitude_error_rms_percent`` (magnitude errors over the rms reference),
-        ``symbol_count``, ``burst_start_s`` and ``burst_duration_s``.
+        ``symbol_count``, ``symbol_rate_error_ppm`` (measured symbol clock against
+        ``symbol_rate``; 0 when no significant drift), ``burst_start_s`` and
+        ``burst_duration_s``.
         Per symbol along ``symbol``: ``measured_symbol`` (corrected, normalised),
         ``ideal_symbol`` (decided or reference), ``symbol_evm_percent``,
         ``symbol_phase_error_deg``, ``symbol_magnitude_error_percent``, ``symbol_time_s``
@@ -940,6 +974,9 @@ def analyze(
         "magnitude_error_rms_percent": quantity(scalar("magnitude_error_rms_percent"), "%",
                                                 "rms magnitude error", sdims),
         "symbol_count": quantity(scalar("symbol_count"), "1", "symbols analysed", sdims),
+        "symbol_rate_error_ppm": quantity(
+            scalar("clock_ppm"), "ppm",
+            "symbol clock error against symbol_rate (0 unless a drift was significant)", sdims),
         "burst_start_s": quantity(scalar("burst_start", lambda v: t0 + v), "s",
                                   "start of the analysed symbols (half a symbol before the first)",
                                   sdims),
