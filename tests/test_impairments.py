@@ -706,3 +706,17 @@ def test_lazy_graphs_pickle_and_run_on_a_cluster():
         got = fixed.compute()
     assert abs(float(est.gain_imbalance_db) - 0.6) <= 4.5 * float(est.gain_imbalance_db_uncertainty)
     np.testing.assert_allclose(got.values, eager.values, atol=1e-6)
+
+
+def test_dc_in_units_of_full_scale_round_trip():
+    # an int16-scaled capture: full_scale 32768; dc_i = 0.01 means 327.68 sample units
+    # 62.5 kHz: 2048 whole cycles in 2**15 samples, so the tone itself has zero mean
+    tone = synth.tone(62.5e3, sample_rate=FS, n_samples=2**15, amplitude=8000.0,
+                      full_scale=32768.0)
+    bad = impairments.apply(tone, dc_i=0.01, dc_q=-0.005, gain_imbalance_db=0.2)
+    assert float(np.mean(bad.values.real)) == pytest.approx(327.68, abs=0.01)
+    est = impairments.estimate(bad)
+    assert float(est.dc_i) == pytest.approx(0.01, abs=1e-6)
+    assert float(est.dc_q) == pytest.approx(-0.005, abs=1e-6)
+    fixed = impairments.correct(bad, est)
+    assert abs(float(np.mean(fixed.values.real))) < 0.01  # sample units, ~3e-7 FS
