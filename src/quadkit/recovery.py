@@ -418,7 +418,9 @@ def _gauss_newton(gram: np.ndarray, ratio: np.ndarray, scale: float) -> np.ndarr
 
 def _finish_complex(mom: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs: float,
                     check: bool, func: str) -> dict:
-    ratio = (np.asarray(ratio) + 0.5) % 1.0 - 0.5  # a tone at the band edge folds into it
+    ratio = np.asarray(ratio, np.float64)
+    outside = (ratio < -0.5) | (ratio >= 0.5)  # a tone at the band edge folds into the band
+    ratio = np.where(outside, (ratio + 0.5) % 1.0 - 0.5, ratio)
     y = mom[:, 0]
     energy = mom[:, 3].real
     amp = np.abs(y) / n
@@ -1009,7 +1011,7 @@ def iq_components(real_cap: xr.DataArray, frequency_hz: float) -> xr.Dataset:
                   attrs={"sample_rate": meta["fs"], "center_frequency": meta["fc"]})
 
 
-def _fold(ratio: float, real: bool) -> float:
+def _fold(ratio: float) -> float:
     """A frequency (cycles/sample) folded into [-0.5, 0.5) as sampling aliases it."""
     return ((ratio + 0.5) % 1.0) - 0.5
 
@@ -1080,7 +1082,7 @@ def harmonics(cap: xr.DataArray, fundamental_hz: float, n: int = 10) -> xr.Datas
     meta = _fixed_meta(cap, data, lazy)
     fs, fc, real = meta["fs"], meta["fc"], meta["real"]
     off = _offset_of(func, fundamental_hz, fs, fc, real)
-    folded = np.array([_fold(h * off / fs, real) for h in range(1, n + 1)])
+    folded = np.array([_fold(h * off / fs) for h in range(1, n + 1)])
     key = np.abs(folded) if real else folded
     for h in range(n):
         if abs(key[h]) < 1e-12 or (real and abs(key[h] - 0.5) < 1e-12):
