@@ -717,3 +717,12 @@ def test_real_tone_near_dc_needs_a_hint():
     # (std 8e-5 Hz, 2e-3 rad here); these tolerances are about 30x the asymptotic bounds
     assert abs(float(res.offset_hz) - 10.0) < 3e-3
     assert abs(float(res.phase_rad) - 1.0) < 0.05
+
+
+def test_calibrated_power_in_dbm():
+    # dBm = dBFS + calibration_db (DESIGN.md)
+    cap = quadkit.synth.tone(1e3, sample_rate=1e6, n_samples=4000, amplitude=0.1,
+                             calibration_db=-20.0)
+    res = recovery.measure_tone(cap)
+    assert abs(float(res.power_dbm) - (20 * math.log10(0.1) - 20.0)) < 1e-4
+    assert res.power_dbm.attrs["units"] == "dBm"

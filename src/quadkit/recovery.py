@@ -551,7 +551,7 @@ def _estimate(cap: xr.DataArray, frequency_hz: float | None, refine: bool, func:
         mom = _pass(data, lazy, _Moments, ratio, centre)
         res = _step(lazy, _finish_complex, mom, ratio, n, centre, fs, check, func)
     meta = {"fs": fs, "fc": fc, "real": real, "n": n, "nchan": nchan,
-            "multi": cap.ndim == 2, "lazy": lazy}
+            "multi": cap.ndim == 2, "lazy": lazy, "cal": cap.attrs.get("calibration_db")}
     return res, meta
 
 
@@ -615,6 +615,9 @@ def _tone_vars(res: Any, meta: dict, with_relative: bool) -> dict:
         "noise_power_dbfs": _var(_field(res, "noise_dbfs", meta), meta, "dBFS",
                                  "mean power of the fit residual per sample"),
     }
+    if meta.get("cal") is not None:  # dBm = dBFS + calibration_db (DESIGN.md)
+        out["power_dbm"] = _var(10 * np.log10(power) + float(meta["cal"]), meta, "dBm",
+                                "tone power (calibrated)")
     if with_relative and meta["multi"]:
         rel = (phc - phc[0] + np.pi) % (2 * np.pi) - np.pi
         out["relative_phase_rad"] = quantity(rel, "rad", "phase relative to channel 0",
@@ -653,7 +656,7 @@ def measure_tone(cap: xr.DataArray, frequency_hz: float | None = None, *,
     xarray.Dataset
         Per channel (dim ``channel`` for a multi-channel capture): ``frequency_hz``,
         ``offset_hz`` (Hz), ``amplitude`` (FS, peak), ``power_dbfs`` (A^2 complex, A^2/2
-        real), ``phase_rad``/``phase_deg`` (at the first sample), ``snr_db`` (tone power over
+        real; also ``power_dbm`` when the capture has ``calibration_db``), ``phase_rad``/``phase_deg`` (at the first sample), ``snr_db`` (tone power over
         the residual power per sample; +inf for a noiseless tone), ``residual_rms`` (FS),
         ``noise_power_dbfs``; for a
         multi-channel capture also ``relative_phase_rad``/``relative_phase_deg``: each
@@ -768,7 +771,7 @@ def sine_fit(cap: xr.DataArray, frequency_hz: float | None = None) -> xr.Dataset
     gram = _pass(data, lazy, _FixedFit, ratio, (1,), real)
     res = _step(lazy, _finish_fit, gram, ratio, n, real, _capture.full_scale(cap), func)
     meta = {"fs": fs, "fc": fc, "real": real, "n": n, "nchan": nchan,
-            "multi": cap.ndim == 2, "lazy": lazy}
+            "multi": cap.ndim == 2, "lazy": lazy, "cal": cap.attrs.get("calibration_db")}
     f = _field
     amp = f(res, "amplitude", meta)
     ph = f(res, "phase0", meta)
@@ -931,7 +934,7 @@ def _solve_fixed(gram: np.ndarray, nh: int, real: bool, func: str) -> tuple:
 def _fixed_meta(cap: xr.DataArray, data: Any, lazy: bool) -> dict:
     return {"fs": _capture.sample_rate(cap), "fc": float(cap.attrs.get("center_frequency", 0.0)),
             "real": not _capture.is_complex(cap), "n": data.shape[1], "nchan": data.shape[0],
-            "multi": cap.ndim == 2, "lazy": lazy}
+            "multi": cap.ndim == 2, "lazy": lazy, "cal": cap.attrs.get("calibration_db")}
 
 
 def _field_nd(res: Any, key: str, meta: dict, shape: tuple, dtype: Any = np.float64) -> Any:
