@@ -484,3 +484,27 @@ def test_spectrogram_plot_of_a_capture_follows_a_chirp():
     first, last = int(np.argmax(img[0])), int(np.argmax(img[-1]))
     assert abs(first - (128 + (-400e3) * 256 / fs)) <= 2
     assert abs(last - (128 + 400e3 * 256 / fs)) <= 2
+
+
+def test_replace_refreshes_the_same_figure_in_place():
+    a = quadkit.synth.tone(1e3, sample_rate=1e5, n_samples=1000)
+    b = quadkit.synth.tone(2e3, sample_rate=1e5, n_samples=3000, amplitude=0.5)
+    fig = views.time_plot(a)
+    src = fig.select_one({"name": "i"}).data_source
+    again = views.time_plot(b, fig=fig, replace=True)
+    assert again is fig and len(fig.renderers) == 3
+    assert fig.select_one({"name": "i"}).data_source is src  # same model, new data
+    np.testing.assert_array_equal(src.data["y"], b.values.real)
+    assert "3,000 samples" in fig.title.text
+    # A figure lacking a renderer the view draws (or holding one it would not) is refused.
+    with pytest.raises(views.RendererMismatch):
+        views.time_plot(b, fig=views.time_plot(a, parts=("i",)), replace=True)
+    with pytest.raises(views.RendererMismatch):
+        views.time_plot(b, fig=fig, parts=("i",), replace=True)
+    sg1, sg2 = _contract_spectrogram(40, 64), _contract_spectrogram(80, 128, fs=2e6)
+    sg2.values[3, 4] = 0.0
+    f = views.spectrogram_plot(sg1)
+    views.spectrogram_plot(sg2, fig=f, replace=True)
+    r = f.select_one({"name": "spectrogram"})
+    np.testing.assert_array_equal(r.data_source.data["image"][0], sg2.values)
+    assert r.glyph.dw == pytest.approx(2.0) and r.glyph.color_mapper.high == 0.0

@@ -49,6 +49,7 @@ __all__ = [
     "phase_noise_plot",
     "image_rejection_plot",
     "envelope_bins",
+    "RendererMismatch",
     "PALETTE",
     "HEAT",
 ]
@@ -272,6 +273,91 @@ def _finish_legend(fig: Any) -> None:
         fig.legend.label_text_font_size = "11px"
 
 
+class RendererMismatch(ValueError):
+    """``replace=True`` was given a figure that lacks a renderer the view would draw."""
+
+
+class _Canvas:
+    """Draws a view's glyphs into a new figure, or refreshes them in place (``replace``).
+
+    In place, each named renderer of the figure gets the new data (and the title, axis
+    labels, legend labels and image placement are updated); nothing is added, so an
+    explorer can refresh its plots without rebuilding them.
+    """
+
+    def __init__(self, fig: Any, *, replace: bool, title: str, x_label: str, y_label: str,
+                 **figure_kwargs: Any) -> None:
+        _, self.models, _ = _bokeh()
+        self.replace = bool(replace) and fig is not None
+        if self.replace:
+            fig.title.text = title
+            fig.xaxis.axis_label = x_label
+            fig.yaxis.axis_label = y_label
+            self.named = {r.name: r for r in fig.renderers if r.name}
+            self.touched: set[str] = set()
+            self.fig = fig
+        else:
+            self.fig = _figure(fig, title=title, x_label=x_label, y_label=y_label,
+                               **figure_kwargs)
+
+    @property
+    def new(self) -> bool:
+        return not self.replace
+
+    def _existing(self, name: str) -> Any:
+        r = self.named.get(name)
+        if r is None:
+            raise RendererMismatch(f"replace=True: the figure has no renderer {name!r}")
+        self.touched.add(name)
+        return r
+
+    def finish(self) -> Any:
+        """The figure; in place, every named renderer must have been refreshed."""
+        if self.replace:
+            stale = sorted(set(self.named) - self.touched)
+            if stale:
+                raise RendererMismatch(f"replace=True: the figure's renderers {stale} would "
+                                       "keep old data")
+        elif self.fig.legend:
+            _finish_legend(self.fig)
+        return self.fig
+
+    def glyph(self, method: str, fields: Sequence[str], data: dict[str, Any], *, name: str,
+              legend_label: str | None = None, **style: Any) -> Any:
+        if self.replace:
+            r = self._existing(name)
+            r.data_source.data = data
+            if legend_label is not None:
+                for legend in self.fig.legend:
+                    for item in legend.items:
+                        if r in item.renderers:
+                            item.label = legend_label
+            return r
+        src = self.models.ColumnDataSource(data)
+        kwargs = dict(style)
+        if legend_label is not None:
+            kwargs["legend_label"] = legend_label
+        return getattr(self.fig, method)(*fields, source=src, name=name, **kwargs)
+
+    def image(self, img: np.ndarray, *, name: str, x: float, y: float, dw: float, dh: float,
+              low: float, high: float, units: str) -> Any:
+        if self.replace:
+            r = self._existing(name)
+            r.data_source.data = {"image": [img]}
+            for attr, value in (("x", x), ("y", y), ("dw", dw), ("dh", dh)):
+                setattr(r.glyph, attr, value)
+            r.glyph.color_mapper.low, r.glyph.color_mapper.high = low, high
+            return r
+        mapper = self.models.LinearColorMapper(palette=HEAT, low=low, high=high,
+                                               nan_color="#00000000")
+        r = self.fig.image(image=[img], x=x, y=y, dw=dw, dh=dh, color_mapper=mapper, name=name)
+        self.fig.x_range.range_padding = 0
+        self.fig.y_range.range_padding = 0
+        self.fig.add_layout(self.models.ColorBar(color_mapper=mapper, title=units, width=12,
+                                                 label_standoff=6), "right")
+        return r
+
+
 _SCALES = ((1e9, "GHz"), (1e6, "MHz"), (1e3, "kHz"), (1.0, "Hz"))
 
 
@@ -370,6 +456,7 @@ def time_plot(
     parts: Sequence[str] = ("i", "q", "envelope"),
     max_points: int = _X_BINS,
     title: str | None = None,
+    replace: bool = False,
 ) -> Any:
     """I, Q and envelope of a capture against time.
 
@@ -384,6 +471,11 @@ def time_plot(
         (``parts`` is ignored).
     fig : bokeh.plotting.figure, optional
         Draw into this figure instead of a new one.
+    replace : bool
+        With ``fig``: refresh the data of ``fig``'s renderers of the same names (made by an
+        earlier call of this view) instead of adding new ones; raises
+        :class:`RendererMismatch` if one is missing. The same option exists on
+        :func:`spectrum_plot`, :func:`spectrogram_plot` and :func:`constellation_plot`.
     channel : label or list of labels, optional
         Channels to draw (default: all, at most 8).
     parts : sequence of {"i", "q", "envelope"}
@@ -448,14 +540,14 @@ def time_plot(
         if reduced:
             title += f", min/max over {len(x) // 2:,} bins"
         title += note
-    fig = _figure(fig, title=title, x_label=_time_label(cap, tunit), y_label="amplitude (FS)")
+    canvas = _Canvas(fig, replace=replace, title=title, x_label=_time_label(cap, tunit),
+                     y_label="amplitude (FS)")
     for k, ch in enumerate(chans):
         # The envelope first (underneath, faint), then I and Q over it.
         order = sorted(range(len(codes)), key=lambda j: codes[j] != "a")
         for j in order:
             c = codes[j]
             y = ys[j, k].astype(np.float32)
-            src = models.ColumnDataSource({"x": x, "y": y})
             name = names[c] if ch is None else f"{names[c]}:{ch}"
             if ch is None:
                 colour = PALETTE[names[c] if c != "x" else "trace"]
@@ -466,10 +558,9 @@ def time_plot(
                 dash = {"i": "solid", "q": "dashed", "a": "dotted", "x": "solid"}[c]
                 label = f"{legend[c]} · ch {ch}"
             alpha = {"a": 0.45, "i": 0.85, "q": 0.7, "x": 0.9}[c]
-            fig.line("x", "y", source=src, name=name, color=colour, line_dash=dash,
-                     line_width=1.2, alpha=alpha, legend_label=label)
-    _finish_legend(fig)
-    return fig
+            canvas.glyph("line", ("x", "y"), {"x": x, "y": y}, name=name, color=colour,
+                         line_dash=dash, line_width=1.2, alpha=alpha, legend_label=label)
+    return canvas.finish()
 
 
 # --------------------------------------------------------------------------------------------
@@ -568,6 +659,7 @@ def spectrum_plot(
     label: str | None = None,
     colour: str | None = None,
     title: str | None = None,
+    replace: bool = False,
     **psd_kwargs: Any,
 ) -> Any:
     """Power spectrum against absolute frequency, with its RBW and the strongest peaks.
@@ -630,7 +722,9 @@ def spectrum_plot(
         if spec.attrs.get("n_averages"):
             title += f", {int(spec.attrs['n_averages'])} averages"
         title += note
-    fig = _figure(fig, title=title, x_label=f"frequency ({funit})", y_label=units)
+    canvas = _Canvas(fig, replace=replace, title=title, x_label=f"frequency ({funit})",
+                     y_label=units)
+    models = canvas.models
     peak_x: list[float] = []
     peak_y: list[float] = []
     peak_text: list[str] = []
@@ -644,10 +738,10 @@ def spectrum_plot(
             x, y = freq, trace
         name = "psd" if ch is None else f"psd:{ch}"
         base = label or ("spectrum" if ch is None else f"ch {ch}")
-        src = models.ColumnDataSource({"x": x / fscale, "y": y.astype(np.float32)})
-        fig.line("x", "y", source=src, name=name, line_width=1.2,
-                 color=colour or (PALETTE["trace"] if ch is None else _channel_colour(k)),
-                 legend_label=f"{base} ({rbw_text})")
+        canvas.glyph("line", ("x", "y"), {"x": x / fscale, "y": y.astype(np.float32)},
+                     name=name, line_width=1.2,
+                     color=colour or (PALETTE["trace"] if ch is None else _channel_colour(k)),
+                     legend_label=f"{base} ({rbw_text})")
         if peaks is None:
             continue
         if isinstance(peaks, str):
@@ -671,19 +765,19 @@ def spectrum_plot(
             if all(abs(peak_x[j] - x0) > span / 40 for x0 in shown):
                 label[j] = peak_text[j]
                 shown.append(peak_x[j])
-        psrc = models.ColumnDataSource({"x": peak_x, "y": peak_y, "text": peak_text,
-                                        "label": label})
-        fig.scatter("x", "y", source=psrc, name="peaks", marker="inverted_triangle", size=9,
-                    color=PALETTE["peak"], legend_label="peaks")
-        fig.add_layout(models.LabelSet(x="x", y="y", text="label", source=psrc, y_offset=8,
-                                       text_font_size="10px", text_color=PALETTE["peak"],
-                                       text_align="center"))
-        fig.add_tools(models.HoverTool(renderers=[fig.select_one({"name": "peaks"})],
-                                       tooltips=[("peak", "@text")]))
-        if peak_y and hasattr(fig.y_range, "range_padding"):
-            fig.y_range.range_padding = 0.2  # room for the labels above the highest peak
-    _finish_legend(fig)
-    return fig
+        pdata = {"x": peak_x, "y": peak_y, "text": peak_text, "label": label}
+        r = canvas.glyph("scatter", ("x", "y"), pdata, name="peaks",
+                         marker="inverted_triangle", size=9, color=PALETTE["peak"],
+                         legend_label="peaks" if canvas.new else None)
+        if canvas.new:
+            fig = canvas.fig
+            fig.add_layout(models.LabelSet(x="x", y="y", text="label", source=r.data_source,
+                                           y_offset=8, text_font_size="10px",
+                                           text_color=PALETTE["peak"], text_align="center"))
+            fig.add_tools(models.HoverTool(renderers=[r], tooltips=[("peak", "@text")]))
+            if hasattr(fig.y_range, "range_padding"):
+                fig.y_range.range_padding = 0.2  # room for the labels above the highest peak
+    return canvas.finish()
 
 
 # --------------------------------------------------------------------------------------------
@@ -717,6 +811,7 @@ def spectrogram_plot(
     frequency_bins: int = _IMAGE_FREQ_BINS,
     dynamic_range_db: float | None = 80.0,
     title: str | None = None,
+    replace: bool = False,
     **spectrogram_kwargs: Any,
 ) -> Any:
     """Spectrogram image with a colour bar, on absolute time and frequency axes.
@@ -785,8 +880,6 @@ def spectrogram_plot(
                                                       dynamic_range_db))
         if bottom >= top:
             bottom = top - 1.0
-        mapper = models.LinearColorMapper(palette=HEAT, low=bottom, high=top,
-                                          nan_color="#00000000")
         ttl = title
         if ttl is None:
             ttl = "Spectrogram"
@@ -795,18 +888,15 @@ def spectrogram_plot(
             if ch is not None:
                 ttl += f" · channel {ch}"
             ttl += note
-        f = _figure(fig, title=ttl, x_label=f"frequency ({funit})",
-                    y_label=_time_label(sg, tunit) if "start_time" in sg.attrs
-                    else f"time ({tunit})", **shared)
-        x0 = (freq[0] - df / 2) / fscale
-        y0 = (tvals[0] - dt / 2) / tscale
-        f.image(image=[img], x=x0, y=y0, dw=(freq[-1] - freq[0] + df) / fscale,
-                dh=(tvals[-1] - tvals[0] + dt) / tscale, color_mapper=mapper,
-                name="spectrogram" if ch is None else f"spectrogram:{ch}")
-        f.x_range.range_padding = 0
-        f.y_range.range_padding = 0
-        f.add_layout(models.ColorBar(color_mapper=mapper, title=units, width=12,
-                                     label_standoff=6), "right")
+        canvas = _Canvas(fig, replace=replace, title=ttl, x_label=f"frequency ({funit})",
+                         y_label=_time_label(sg, tunit) if "start_time" in sg.attrs
+                         else f"time ({tunit})", **shared)
+        canvas.image(img, name="spectrogram" if ch is None else f"spectrogram:{ch}",
+                     x=(freq[0] - df / 2) / fscale, y=(tvals[0] - dt / 2) / tscale,
+                     dw=(freq[-1] - freq[0] + df) / fscale,
+                     dh=(tvals[-1] - tvals[0] + dt) / tscale, low=bottom, high=top,
+                     units=units)
+        f = canvas.finish()
         figs.append(f)
         if not shared:
             shared = {"x_range": f.x_range, "y_range": f.y_range}
@@ -858,6 +948,7 @@ def constellation_plot(
     error_vectors: bool = False,
     max_points: int = _MAX_POINTS,
     title: str | None = None,
+    replace: bool = False,
 ) -> Any:
     """Received symbols in the IQ plane, with the ideal points and optional error vectors.
 
@@ -945,25 +1036,24 @@ def constellation_plot(
             if ch is not None:
                 ttl += f" · channel {ch}"
             ttl += note
-        f = _figure(fig, title=ttl, x_label="I (FS)", y_label="Q (FS)",
-                    match_aspect=True, height=420, **shared)
+        canvas = _Canvas(fig, replace=replace, title=ttl, x_label="I (FS)", y_label="Q (FS)",
+                         match_aspect=True, height=420, **shared)
         if error_vectors and ref is not None:
-            esrc = models.ColumnDataSource({
+            canvas.glyph("segment", ("x0", "y0", "x1", "y1"), {
                 "x0": rx.real.astype(np.float32), "y0": rx.imag.astype(np.float32),
-                "x1": ref.real.astype(np.float32), "y1": ref.imag.astype(np.float32)})
-            f.segment("x0", "y0", "x1", "y1", source=esrc, name="error",
-                      color=PALETTE["error"], alpha=0.5, line_width=1,
-                      legend_label="error vectors")
-        src = models.ColumnDataSource({"x": rx.real.astype(np.float32),
-                                       "y": rx.imag.astype(np.float32)})
-        f.scatter("x", "y", source=src, name="received", size=3, alpha=0.45,
-                  color=PALETTE["trace"], legend_label="received")
+                "x1": ref.real.astype(np.float32), "y1": ref.imag.astype(np.float32)},
+                name="error", color=PALETTE["error"], alpha=0.5, line_width=1,
+                legend_label="error vectors")
+        canvas.glyph("scatter", ("x", "y"), {"x": rx.real.astype(np.float32),
+                                             "y": rx.imag.astype(np.float32)},
+                     name="received", size=3, alpha=0.45, color=PALETTE["trace"],
+                     legend_label="received")
         if ideal_pts is not None and ideal_pts.size:
-            isrc = models.ColumnDataSource({"x": ideal_pts.real.astype(np.float32),
-                                            "y": ideal_pts.imag.astype(np.float32)})
-            f.scatter("x", "y", source=isrc, name="ideal", marker="cross", size=14,
-                      line_width=2.5, color=PALETTE["ideal"], legend_label="ideal")
-        _finish_legend(f)
+            canvas.glyph("scatter", ("x", "y"), {"x": ideal_pts.real.astype(np.float32),
+                                                 "y": ideal_pts.imag.astype(np.float32)},
+                         name="ideal", marker="cross", size=14, line_width=2.5,
+                         color=PALETTE["ideal"], legend_label="ideal")
+        f = canvas.finish()
         figs.append(f)
         if not shared:
             shared = {"x_range": f.x_range, "y_range": f.y_range}

@@ -457,19 +457,27 @@ class _Explorer:
                 analysis = modulation.analyze(ch, self.scheme.value,
                                               symbol_rate=float(self.symbol_rate.value))
             self.analysis = analysis
-            fresh = {
-                "spectrum": views.spectrum_plot(ch, label="channel"),
-                "spectrogram": views.spectrogram_plot(ch, nperseg=min(256, ch.sizes["time"])),
-                "time": views.time_plot(ch),
-                "constellation": views.constellation_plot(
-                    analysis if analysis is not None else ch.isel(time=slice(0, 5000)),
-                    error_vectors=analysis is not None),
+            constellation_input = analysis if analysis is not None else \
+                ch.isel(time=slice(0, 5000))
+            plans = {
+                "spectrum": (views.spectrum_plot, ch, {"label": "channel"}),
+                "spectrogram": (views.spectrogram_plot, ch,
+                                {"nperseg": min(256, ch.sizes["time"])}),
+                "time": (views.time_plot, ch, {}),
+                "constellation": (views.constellation_plot, constellation_input,
+                                  {"error_vectors": analysis is not None}),
             }
-            for key, fig in fresh.items():
+            for key, (view, data, options) in plans.items():
                 old = self.figures.get(key)
-                if old is None or not _sync_figure(old, fig):
-                    self._slots[key].children = [fig]
-                    self.figures[key] = fig
+                if old is not None:
+                    try:  # refresh in place: only the data travels to the page
+                        view(data, fig=old, replace=True, **options)
+                        continue
+                    except views.RendererMismatch:
+                        pass  # other renderers now (a scheme was chosen): a new figure
+                fig = view(data, **options)
+                self._slots[key].children = [fig]
+                self.figures[key] = fig
             self.recomputes += 1
             self.status.value = ""
 
