@@ -10,7 +10,6 @@ import re
 import shutil
 import tempfile
 import time
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -47,7 +46,7 @@ def page(bench_cap):
 
 def test_page_is_self_contained(page):
     # BokehJS inline: no script or stylesheet fetched from anywhere.
-    assert "BEGIN bokeh.min.js" in page or "Bokeh" in page
+    assert "BEGIN bokeh.min.js" in page and "BEGIN bokeh-gl.min.js" in page
     assert not re.search(r"<script[^>]+src=", page)
     assert not re.search(r"<link[^>]+href=", page)
     assert "cdn.bokeh.org" not in page

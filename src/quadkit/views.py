@@ -797,11 +797,6 @@ def _spectrogram_of(obj: Any, kwargs: dict[str, Any]) -> xr.DataArray:
     )
 
 
-def _image_axes(values: np.ndarray, n_bins: int) -> tuple[np.ndarray, np.ndarray]:
-    """Pool a (time, frequency) dB image to at most n_bins rows (max keeps bursts)."""
-    return _pool_max(values, 0, n_bins)
-
-
 def spectrogram_plot(
     obj: Any,
     *,

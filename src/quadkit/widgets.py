@@ -40,7 +40,6 @@ import threading
 import traceback
 from typing import Any, Callable
 
-import numpy as np
 import xarray as xr
 
 from . import _capture
