@@ -61,6 +61,7 @@ _ACCESSOR = (
     "constellation_plot",
     "eye_plot",
     "phase_noise_plot",
+    "image_rejection_plot",
 )
 
 #: Our colours: named roles, and a cycle for channels.
@@ -1303,15 +1304,17 @@ def image_rejection_plot(
     channel: Any = None,
     label: str | None = None,
     title: str | None = None,
+    **sweep_kwargs: Any,
 ) -> Any:
     """Image rejection ratio (dB) against frequency.
 
     Parameters
     ----------
-    obj : Dataset or DataArray
-        A result holding ``image_rejection_db`` along a frequency dim (absolute
-        ``frequency_hz`` or baseband ``offset_hz`` coordinate), e.g. from a sweep of
-        :func:`quadkit.impairments.estimate` across tones.
+    obj : capture, Dataset or DataArray
+        A capture of a multitone or a sweep (measured with
+        :func:`quadkit.impairments.image_rejection_vs_frequency`, passing ``sweep_kwargs``),
+        or a result holding ``image_rejection_db`` along a frequency dim (absolute
+        ``frequency`` / ``frequency_hz`` or baseband ``offset`` coordinate).
     label : str, optional
         Legend label (to compare before/after correction in one figure).
 
@@ -1329,6 +1332,10 @@ def image_rejection_plot(
     ...      .data_source.data["y"][:2]]
     [35.0, 35.0]
     """
+    if isinstance(obj, xr.DataArray) and "time" in obj.dims:
+        from . import impairments
+
+        obj = impairments.image_rejection_vs_frequency(obj, **sweep_kwargs)
     curve = _curve(obj, ("image_rejection_db", "irr_db"), "image_rejection_plot")
     _, models, _ = _bokeh()
     dim = _along(curve)
