@@ -173,3 +173,14 @@ def test_import_is_light():
     code = "import sys, quadkit; print('bokeh' in sys.modules, 'ipywidgets' in sys.modules)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.split() == ["False", "False"]
+
+
+def test_random_chunks_and_as_lazy():
+    from quadkit.testing import as_lazy, random_chunks
+
+    sizes = random_chunks(1001, rng=3, n_chunks=5)
+    assert sum(sizes) == 1001 and len(sizes) == 5 and sizes[-1] == min(sizes)
+    cap = quadkit.synth.tone(1e3, sample_rate=1e6, n_samples=1001).isel(time=slice(1, None))
+    lazy = as_lazy(cap, 300)
+    assert _capture.is_lazy(lazy) and lazy.chunks[0] == (300, 300, 300, 100)
+    assert_captures_close(lazy, cap, atol=0)  # same samples, same absolute times

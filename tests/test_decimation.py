@@ -14,7 +14,7 @@ from hypothesis import strategies as st
 import quadkit
 from quadkit import _capture
 from quadkit.decimation import decimate, extract_channel, filter, lowpass_taps, resample
-from quadkit.testing import assert_lazy, raise_if_dask_computes
+from quadkit.testing import as_lazy, assert_lazy, raise_if_dask_computes
 
 RNG = np.random.default_rng(20261201)
 
@@ -26,9 +26,7 @@ def noise(n, channels=None, dtype=np.complex64, seed=0):
     return (x / math.sqrt(2)).astype(dtype)
 
 
-def lazy(cap, chunks):
-    data = da.from_array(cap.values, chunks=cap.data.shape[:-1] + (tuple(chunks),))
-    return _capture.like(cap, data, start_index=_capture.start_index(cap))
+lazy = as_lazy
 
 
 def settled(y):

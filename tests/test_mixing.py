@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 import quadkit
 from quadkit import _capture
 from quadkit.mixing import downconvert, shift, upconvert
-from quadkit.testing import assert_lazy, raise_if_dask_computes
+from quadkit.testing import as_lazy, assert_lazy, raise_if_dask_computes
 
 
 def noise(n, channels=None, dtype=np.complex64, seed=0):
@@ -25,9 +25,7 @@ def noise(n, channels=None, dtype=np.complex64, seed=0):
     return (x / math.sqrt(2)).astype(dtype)
 
 
-def lazy(cap, chunks):
-    data = da.from_array(cap.values, chunks=cap.data.shape[:-1] + (tuple(chunks),))
-    return _capture.like(cap, data, start_index=_capture.start_index(cap))
+lazy = as_lazy
 
 
 def settled(y):

@@ -12,12 +12,52 @@ import xarray as xr
 from ._capture import is_lazy
 
 __all__ = [
+    "as_lazy",
+    "random_chunks",
     "assert_captures_close",
     "assert_attrs_equal",
     "assert_units",
     "assert_lazy",
     "raise_if_dask_computes",
 ]
+
+
+def random_chunks(n: int, rng: Any = None, *, n_chunks: int = 4) -> tuple[int, ...]:
+    """Random chunk sizes that add up to ``n``, the last one shorter than the others.
+
+    Chunk borders at random places, and a short last chunk, are where streaming code breaks.
+    """
+    rng = np.random.default_rng(rng)
+    n_chunks = max(1, min(int(n_chunks), n))
+    if n_chunks == 1:
+        return (int(n),)
+    cuts = np.sort(rng.choice(np.arange(1, n), size=n_chunks - 1, replace=False))
+    sizes = np.diff(np.concatenate(([0], cuts, [n]))).tolist()
+    sizes.sort(reverse=True)  # the shortest goes last
+    return tuple(int(s) for s in sizes)
+
+
+def as_lazy(cap: xr.DataArray, chunks: Any) -> xr.DataArray:
+    """The same capture backed by dask, chunked along time as given (an int or sizes).
+
+    Keeps the attrs and the absolute time axis, so streaming results can be compared with
+    the in-memory ones sample for sample.
+
+    Examples
+    --------
+    >>> import quadkit
+    >>> from quadkit.testing import as_lazy, random_chunks
+    >>> cap = quadkit.synth.tone(1e3, sample_rate=1e6, n_samples=1000)
+    >>> as_lazy(cap, random_chunks(1000, rng=0, n_chunks=3)).chunks[0][-1] < 500
+    True
+    """
+    import dask.array as da
+
+    from ._capture import like, start_index
+
+    time_chunks = (int(chunks),) if isinstance(chunks, (int, np.integer)) else (tuple(chunks),)
+    data = da.from_array(np.asarray(cap.values), chunks=cap.data.shape[:-1] + time_chunks)
+    return like(cap, data, start_index=start_index(cap))
 
 
 def assert_attrs_equal(actual: xr.DataArray, expected: xr.DataArray, *, ignore=()) -> None:
