@@ -55,18 +55,23 @@ def _progress(enabled: bool | None, steps: Sequence[str]):
     return bar, advance
 
 
-def _summary(args: argparse.Namespace, cap: Any) -> Any:
+_SUMMARY_STEPS = ["power", "IQ imbalance", "spectrum", "tones"]
+_REPORT_STEPS = ["spectrum", "spectrogram", "time", "phase noise", "constellation", "page"]
+
+
+def _summary(args: argparse.Namespace, cap: Any, advance: Any = None) -> Any:
     from .summary import summarize
 
-    steps = ["power", "IQ imbalance", "spectrum", "tones"]
-    if args.scheme:
-        steps.append("modulation")
-    bar, advance = _progress(args.progress, steps)
+    steps = _SUMMARY_STEPS + (["modulation"] if args.scheme else [])
+    bar = None
+    if advance is None:
+        bar, advance = _progress(args.progress, steps)
     try:
         return summarize(cap, scheme=args.scheme, symbol_rate=args.symbol_rate,
                          rolloff=args.rolloff, progress=advance)
     finally:
-        bar.close()
+        if bar is not None:
+            bar.close()
 
 
 def _cmd_inspect(args: argparse.Namespace) -> int:
@@ -113,10 +118,19 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
 def _cmd_report(args: argparse.Namespace) -> int:
     from . import report
 
+    from .io._atomic import check_writable
+
+    check_writable(args.output, overwrite=args.overwrite)  # refuse before any work
     cap = _read(args, args.file)
-    summary = _summary(args, cap)
-    path = report.write(cap, args.output, overwrite=args.overwrite, summary=summary,
-                        source_name=Path(args.file).name)
+    steps = _SUMMARY_STEPS + (["modulation"] if args.scheme else []) + _REPORT_STEPS
+    bar, advance = _progress(args.progress, steps)
+    try:
+        summary = _summary(args, cap, advance)
+        path = report.write(cap, args.output, overwrite=args.overwrite, summary=summary,
+                            source_name=Path(args.file).name, scheme=args.scheme,
+                            symbol_rate=args.symbol_rate, progress=advance)
+    finally:
+        bar.close()
     print(f"wrote {path}")
     return 0
 
@@ -230,6 +244,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if isinstance(exc, (FileNotFoundError, FileExistsError, PermissionError,
                             IsADirectoryError)) and exc.filename and str(exc.filename) not in msg:
             msg = f"{msg}: {exc.filename}"
+        msg = msg.replace("pass overwrite=True", "pass --overwrite")
         print(f"quadkit: error: {msg}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
