@@ -184,3 +184,11 @@ def test_random_chunks_and_as_lazy():
     lazy = as_lazy(cap, 300)
     assert _capture.is_lazy(lazy) and lazy.chunks[0] == (300, 300, 300, 100)
     assert_captures_close(lazy, cap, atol=0)  # same samples, same absolute times
+
+
+def test_to_json_of_a_dataarray_keeps_its_axes():
+    da_ = xr.DataArray([-3.0, -6.0], dims="frequency", name="psd",
+                       coords={"frequency": [1e6, 2e6], "offset": ("frequency", [-5e5, 5e5])},
+                       attrs={"units": "dBFS/Hz"})
+    assert quadkit.to_json(da_) == {"psd": [-3.0, -6.0], "frequency": [1e6, 2e6],
+                                    "offset": [-5e5, 5e5], "units": "dBFS/Hz"}

@@ -694,3 +694,16 @@ def test_find_peaks_lists_tones_not_the_top_of_a_noise_carrier():
                                          nperseg=4096), threshold_db=10)
     assert t.sizes["tone"] == 1
     assert float(t.offset_hz[0]) == pytest.approx(30e3, abs=fs / 4096 / 10)
+
+
+def test_find_peaks_ignores_float32_rounding_spurs():
+    # A noiseless complex64 multitone: its only other "peaks" are the rounding of the number
+    # format, ~150 dB down (float32 has a 24-bit significand: 6.02 x 24 = 144 dB, memory).
+    cap = quadkit.synth.multitone([-1e5, 2e5], sample_rate=1e6, n_samples=2**16,
+                                  amplitudes=[0.5, 0.1])
+    t = spectral.find_peaks(spectral.psd(cap))
+    assert t.sizes["tone"] == 2
+    np.testing.assert_allclose(t.power_dbfs.values, 20 * np.log10([0.5, 0.1]), atol=0.01)
+    # asked for, the artefacts are there: the limit is what removes them
+    many = spectral.find_peaks(spectral.psd(cap), dynamic_range_db=250)
+    assert many.sizes["tone"] > 2

@@ -135,3 +135,39 @@ def test_imbalance_and_dc_are_reported_and_warned():
     assert any(w.startswith("IQ imbalance") for w in s["warnings"])
     # DC power 0.05^2 + 0.03^2 against 0.1 total: -15.3 dBc, above the -30 dBc level
     assert any(w.startswith("DC spike") for w in s["warnings"])
+
+
+def test_non_finite_samples_are_named_first():
+    x = np.ones(8192, np.complex64) * 0.1
+    x[1000] = np.nan
+    x[2000] = np.inf
+    s = quadkit.summarize(quadkit.capture(x, sample_rate=1e6))
+    assert s.attrs["warnings"][0].startswith("non-finite samples: 2 are NaN or Inf")
+    assert "sample 1000" in s.attrs["warnings"][0]
+
+
+def test_summary_prints_nothing_on_an_all_zero_capture(recwarn):
+    s = quadkit.summarize(quadkit.capture(np.zeros(8192, np.complex64), sample_rate=1e6))
+    assert "all zeros" in s.attrs["warnings"][0]
+    assert not [w for w in recwarn if issubclass(w.category, RuntimeWarning)]
+    json.dumps(quadkit.to_json(s), allow_nan=False)
+
+
+def test_failed_modulation_keeps_the_keys_and_bad_rates_are_refused():
+    cap = _tone_capture(n=8192)
+    # pure noise has no symbols to find: the keys of DESIGN.md are there, as null
+    noise = synth.noise(sample_rate=1e6, n_samples=8192, rng=3)
+    out = quadkit.to_json(quadkit.summarize(noise, scheme="qpsk", symbol_rate=100e3))
+    assert set(out["modulation"]) >= {"evm_rms_percent", "evm_peak_percent", "mer_db",
+                                      "frequency_error_hz", "iq_offset_db",
+                                      "phase_error_rms_deg", "magnitude_error_rms_percent"}
+    assert out["modulation"]["evm_rms_percent"] is None
+    assert any(w.startswith("modulation: not measured") for w in out["warnings"])
+    with pytest.raises(ValueError, match="below the sample rate"):
+        quadkit.summarize(cap, scheme="qpsk", symbol_rate=2e6)
+
+
+def test_summarize_is_the_documented_function():
+    import inspect
+
+    assert "scheme" in inspect.signature(quadkit.summarize).parameters

@@ -23,6 +23,7 @@ from . import accessor as _accessor  # noqa: F401  (registers the .qk accessor)
 from ._capture import capture, validate
 from ._errors import CaptureError, MeasurementError
 from ._results import to_json
+from .summary import summarize
 
 __version__ = "0.1.0"
 
@@ -40,13 +41,6 @@ _SUBMODULES = {
     "io", "synth", "mixing", "decimation", "recovery", "spectral", "impairments",
     "modulation", "summary", "views", "widgets", "report", "testing", "cli",
 }
-
-
-def summarize(cap: Any, **kwargs: Any) -> Any:
-    """All standard figures of a capture in one call; see :func:`quadkit.summary.summarize`."""
-    from .summary import summarize as _summarize
-
-    return _summarize(cap, **kwargs)
 
 
 def __getattr__(name: str) -> Any:

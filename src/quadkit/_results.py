@@ -74,7 +74,8 @@ def to_json(result: Any) -> Any:
     """Turn any quadkit result into plain JSON-able Python: numbers, lists, strings, dicts.
 
     A Dataset becomes a dict of its data variables and coordinates (arrays become nested
-    lists); lazy values are computed. A result may ask for a friendlier layout through two
+    lists); a DataArray (a spectrum, say) a dict of its values under its name, its
+    coordinates and its ``units``; lazy values are computed. A result may ask for a friendlier layout through two
     attrs: ``json_records`` maps an output key to a dimension (``{"tones": "tone"}``: the
     variables along ``tone`` become a list of records, their ``tone_`` prefix dropped), and
     ``json_groups`` maps an output key to a name prefix (``{"modulation": "modulation_"}``:
@@ -91,7 +92,11 @@ def to_json(result: Any) -> Any:
     if isinstance(result, xr.Dataset):
         return _dataset_json(result.compute())
     if isinstance(result, xr.DataArray):
-        return _plain(result.compute())
+        name = str(result.name) if result.name is not None else "values"
+        out = _dataset_json(result.compute().to_dataset(name=name))
+        if "units" in result.attrs and "units" not in out:
+            out["units"] = _plain(result.attrs["units"])
+        return out
     return _plain(result)
 
 

@@ -851,6 +851,7 @@ def find_peaks(
     *,
     threshold_db: float = 10.0,
     max_peaks: int = 20,
+    dynamic_range_db: float | None = None,
     **psd_options: Any,
 ) -> xr.Dataset:
     """Tones and spurs standing out of the local noise floor: a spur table in one call.
@@ -879,6 +880,11 @@ def find_peaks(
         Minimum height above the local floor (and leakage), in dB.
     max_peaks : int
         At most this many peaks per channel, the strongest first.
+    dynamic_range_db : float, optional
+        Peaks further than this below the strongest one are not listed. The default follows
+        the precision of the samples: 130 dB for single precision (complex64 rounding leaves
+        spurs about 150 dB down, which are artefacts of the number format, not of the
+        signal), 280 dB for double precision.
 
     Returns
     -------
@@ -920,6 +926,10 @@ def find_peaks(
     sumw2 = _window_sums(window, nper)[1]
     L = _lobe_bins(window)
     thr = 10 ** (threshold_db / 10)
+    if dynamic_range_db is None:
+        dynamic_range_db = 130.0 if spectrum.dtype == np.float32 else 280.0
+    dynamic_range_db = check_positive("find_peaks", "dynamic_range_db", dynamic_range_db)
+    span = 10 ** (-dynamic_range_db / 10)
     rows: list[tuple] = []
     channels = spectrum.channel.values if "channel" in spectrum.dims else [None]
     for c, ch in enumerate(channels):
@@ -953,7 +963,7 @@ def find_peaks(
                 continue
             idx, delta, frac = _component(pt, fl, int(k), window, nper, circular)
             power = float(np.sum(pt[idx] - fl[idx]) * df / frac)
-            if not power > 0:
+            if not power > 0 or (accepted and power < span * accepted[0][1]):
                 continue
             pos = k + delta
             accepted.append((pos, power))

@@ -8,6 +8,7 @@ front end healthy, what signals are in it. Its figures are the keys of ``quadkit
 from __future__ import annotations
 
 import math
+import warnings as warnings_module
 from collections.abc import Callable
 from typing import Any
 
@@ -34,6 +35,17 @@ WARNING_LEVELS: dict[str, float] = {
     "min_samples": 4096,
     # Peak power above this (dBFS) is near full scale.
     "peak_dbfs": -0.5,
+}
+
+#: The figures of :func:`quadkit.modulation.analyze` (DESIGN.md), with their units.
+MODULATION_FIGURES: dict[str, str] = {
+    "evm_rms_percent": "%",
+    "evm_peak_percent": "%",
+    "mer_db": "dB",
+    "frequency_error_hz": "Hz",
+    "iq_offset_db": "dB",
+    "phase_error_rms_deg": "deg",
+    "magnitude_error_rms_percent": "%",
 }
 
 # name -> (units, long_name) of every scalar figure, in the order the table prints them.
@@ -127,6 +139,18 @@ def summarize(
     >>> round(float(s.tone_offset_hz[0]) / 1e3, 1)
     100.0
     """
+    # Empty, constant or all-zero captures make logs of zero and 0/0 on the way; those
+    # figures come out as -inf or NaN (null in JSON) with a warning of their own, so numpy's
+    # floating-point chatter would only repeat it on stderr.
+    with np.errstate(all="ignore"), warnings_module.catch_warnings():
+        warnings_module.simplefilter("ignore", RuntimeWarning)
+        return _summarize(cap, scheme=scheme, symbol_rate=symbol_rate, rolloff=rolloff,
+                          max_tones=max_tones, tone_threshold_db=tone_threshold_db,
+                          levels=levels, progress=progress)
+
+
+def _summarize(cap, *, scheme, symbol_rate, rolloff, max_tones, tone_threshold_db, levels,
+               progress):
     lv = dict(WARNING_LEVELS)
     lv.update(levels or {})
     max_tones = check_positive_int("summarize", "max_tones", max_tones)
@@ -138,6 +162,11 @@ def summarize(
     _capture.validate_light(cap)
     step = progress or (lambda name: None)
     fs = _capture.sample_rate(cap)
+    if symbol_rate is not None and symbol_rate >= fs:
+        raise ValueError(
+            f"summarize: symbol_rate={symbol_rate:g} Hz must be below the sample rate {fs:g} Hz "
+            "(at least 2 samples per symbol are needed)"
+        )
     n = int(cap.sizes["time"])
     if n == 0:
         raise MeasurementError("summarize: the capture has no samples")
@@ -153,16 +182,20 @@ def summarize(
         clipped = (abs(x.real) >= clip) | (abs(x.imag) >= clip)
     else:
         clipped = abs(x) >= clip
+    finite = np.isfinite(x)
     reductions = [
         mag2.astype(np.float64).mean(axis=-1),
         mag2.max(axis=-1),
         clipped.astype(np.float64).mean(axis=-1),
+        (~finite).sum(),
+        (~finite).ravel().argmax(),
     ]
     if _capture.is_lazy(cap):
         import dask
 
         reductions = dask.compute(*reductions)
-    mean_p, peak_p, clip_frac = (np.asarray(r, dtype=float) for r in reductions)
+    mean_p, peak_p, clip_frac = (np.asarray(r, dtype=float) for r in reductions[:3])
+    n_bad, first_bad = int(reductions[3]), int(reductions[4])
     mean_dbfs = _db(mean_p / scale**2)
     peak_dbfs = _db(np.asarray(peak_p, dtype=float) / scale**2)
     figures: dict[str, Any] = {
@@ -175,6 +208,14 @@ def summarize(
         "crest_factor_db": peak_dbfs - mean_dbfs,
         "clipped_fraction": clip_frac,
     }
+    if n_bad:
+        where = f"sample {first_bad % n}"
+        if cap.ndim == 2:
+            where = f"channel {first_bad // n}, " + where
+        serious.append(
+            f"non-finite samples: {n_bad} are NaN or Inf (the first is {where}); figures that "
+            "use them are n/a. Look for a failed conversion or a dropped buffer"
+        )
     if np.any(mean_p == 0):
         serious.append("the capture is all zeros (no signal at all): check the receiver")
     if np.any(clip_frac > 0):
@@ -278,7 +319,10 @@ def summarize(
         mod = _try(warnings, "modulation", lambda: modulation.analyze(
             cap, scheme, symbol_rate=symbol_rate, rolloff=rolloff))
         attrs["json_groups"] = {"modulation": "modulation_"}
-        if mod is not None:
+        if mod is None:  # the figures are named all the same, as not measured
+            for name, units in MODULATION_FIGURES.items():
+                data_vars[f"modulation_{name}"] = quantity(np.nan, units, name.replace("_", " "))
+        else:
             for name, var in mod.data_vars.items():
                 if "symbol" in var.dims:
                     continue
