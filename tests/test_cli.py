@@ -107,3 +107,18 @@ def test_demo_writes_and_refuses_to_overwrite(tmp_path):
     assert "quadkit inspect" in r.stdout
     r = run("demo", tmp_path / "d")
     assert r.returncode == 2 and "--overwrite" in r.stderr
+
+
+def test_errors_speak_the_command_line(tmp_path):
+    (tmp_path / "folder").mkdir()
+    r = run("inspect", tmp_path / "folder")
+    assert r.returncode == 2 and "is a folder" in r.stderr
+    r = run("inspect", tmp_path / "missing.bin")
+    assert r.returncode == 2 and "no such file" in r.stderr
+    raw = tmp_path / "x.bin"
+    raw.write_bytes(b"\0" * 16)
+    r = run("inspect", raw)
+    assert r.returncode == 2 and "--dtype and --sample-rate" in r.stderr
+    (tmp_path / "afile").write_text("")
+    r = run("demo", tmp_path / "afile")
+    assert r.returncode == 2 and "not a folder" in r.stderr

@@ -31,6 +31,21 @@ class _Parser(argparse.ArgumentParser):
 def _read(args: argparse.Namespace, path: str) -> Any:
     from . import io
 
+    p = Path(path)
+    kind = io._kind(p)
+    if not p.exists():
+        raise _UserError(f"{path}: no such file")
+    if p.is_dir() and kind != "zarr":
+        raise _UserError(f"{path} is a folder, not a capture file (Zarr stores end in .zarr)")
+    if kind == "raw" and (not getattr(args, "dtype", None)
+                          or getattr(args, "sample_rate", None) is None):
+        raise _UserError(
+            f"{path}: the extension is not one quadkit knows, so it is read as raw samples, "
+            "which needs --dtype and --sample-rate (e.g. --dtype ci16_le --sample-rate 2e6); "
+            "known extensions: .sigmf-meta, .sigmf-data, .sigmf, .wav, .nc, .zarr, .npy")
+    if kind == "npy" and getattr(args, "sample_rate", None) is None:
+        raise _UserError(f"{path}: .npy files hold no sample rate; give --sample-rate (Hz)")
+
     overrides: dict[str, Any] = {}
     if getattr(args, "dtype", None):
         overrides["dtype"] = args.dtype
@@ -163,6 +178,8 @@ def _cmd_convert(args: argparse.Namespace) -> int:
 def _cmd_demo(args: argparse.Namespace) -> int:
     from . import demo
 
+    if Path(args.dir).exists() and not Path(args.dir).is_dir():
+        raise _UserError(f"{args.dir} exists and is not a folder; name a folder for the demo files")
     written = demo.write_demo(args.dir, overwrite=args.overwrite)
     print(f"wrote {len(written)} demo captures to {args.dir}:")
     for path, text in written:
@@ -245,6 +262,7 @@ def main(argv: Sequence[str] | None = None) -> int:
                             IsADirectoryError)) and exc.filename and str(exc.filename) not in msg:
             msg = f"{msg}: {exc.filename}"
         msg = msg.replace("pass overwrite=True", "pass --overwrite")
+        msg = msg.replace("pass sample_rate=", "pass --sample-rate")
         print(f"quadkit: error: {msg}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
