@@ -726,3 +726,92 @@ def test_calibrated_power_in_dbm():
     res = recovery.measure_tone(cap)
     assert abs(float(res.power_dbm) - (20 * math.log10(0.1) - 20.0)) < 1e-4
     assert res.power_dbm.attrs["units"] == "dBm"
+
+
+# --------------------------------------------------------------------------------------------
+# full_scale: results in units of full scale, dBFS relative to it
+# --------------------------------------------------------------------------------------------
+
+def test_full_scale_absolute_level_and_dbm():
+    # DESIGN.md: a complex tone of magnitude full_scale is 0 dBFS and dBm = dBFS +
+    # calibration_db, so a tone of magnitude 0.5 full_scale is 20 log10(0.5) dBFS.
+    fs_value, cal = 32768.0, -10.0
+    x = 0.5 * fs_value * np.exp(2j * np.pi * 0.1 * np.arange(4096))
+    cap = quadkit.capture(x.astype(np.complex64), sample_rate=1e6, full_scale=fs_value,
+                          calibration_db=cal)
+    res = recovery.measure_tone(cap)
+    dbfs = 20 * math.log10(0.5)
+    # complex64 samples: relative rounding ~6e-8 per sample, far inside 1e-6 of the amplitude
+    assert abs(float(res.amplitude) - 0.5) < 1e-6
+    assert abs(float(res.power_dbfs) - dbfs) < 1e-5
+    assert abs(float(res.power_dbm) - (dbfs + cal)) < 1e-5
+    # the residual is the complex64 rounding of the samples: |error| <= 2^-24 of 0.5 FS per
+    # component, so well below 1e-7 FS rms once expressed in units of full scale
+    assert float(res.residual_rms) < 1e-7
+    assert float(res.noise_power_dbfs) < -140
+    fit = recovery.sine_fit(cap, 1e5)
+    assert abs(float(fit.amplitude) - 0.5) < 1e-6
+    iq = recovery.iq_components(cap, 1e5)
+    assert abs(float(iq.amplitude) - 0.5) < 1e-6
+    assert abs(float(iq.i) - 0.5) < 1e-6  # phase 0 at the first sample: I = A, Q = 0
+    h = recovery.harmonics(cap, 1e5, n=2)
+    assert abs(float(h.amplitude[0]) - 0.5) < 1e-6
+    assert abs(float(h.power_dbfs[0]) - dbfs) < 1e-5
+
+
+def _scaled(cap: xr.DataArray, factor: float) -> xr.DataArray:
+    """The same capture with samples times ``factor`` and full_scale = factor."""
+    attrs = {k: v for k, v in cap.attrs.items()
+             if k not in ("sample_rate", "center_frequency", "full_scale")}
+    return quadkit.capture(cap.values * factor, sample_rate=cap.attrs["sample_rate"],
+                           center_frequency=cap.attrs["center_frequency"],
+                           full_scale=factor, **attrs)
+
+
+@pytest.mark.parametrize("factor", [32768.0, 1000.0, 1e-3])
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_results_do_not_depend_on_full_scale(case, factor):
+    # dBFS and "FS" are relative to full_scale by definition (DESIGN.md): samples x F with
+    # full_scale F are the same signal as x with full_scale 1, so every figure must agree.
+    base = CASES[case]().astype(np.float64 if CASES[case]().dtype.kind == "f"
+                                else np.complex128)
+    base.attrs["calibration_db"] = -30.0
+    cap = _scaled(base, factor)
+    f = float(recovery.measure_tone(base).frequency_hz.values.ravel()[0])
+    calls = {
+        "measure_tone": lambda c: recovery.measure_tone(c),
+        "sine_fit": lambda c: recovery.sine_fit(c),
+        "sine_fit3": lambda c: recovery.sine_fit(c, f),
+        "iq_components": lambda c: recovery.iq_components(c, f),
+        "harmonics": lambda c: recovery.harmonics(c, f, 3),
+    }
+    for name, call in calls.items():
+        # float64 samples scaled by F: the sums scale exactly up to rounding (~1e-16
+        # relative), which the iterations cannot amplify beyond ~1e-9
+        _assert_close_datasets(call(cap), call(base), rtol=1e-9, atol=1e-9)
+    lazy = _lazy(cap, np.random.default_rng(7))
+    with raise_if_dask_computes():
+        built = recovery.measure_tone(lazy)
+    _assert_close_datasets(built.compute(), recovery.measure_tone(base), rtol=1e-7, atol=1e-7)
+
+
+@pytest.mark.parametrize("real", [False, True])
+def test_envelope_and_analytic_stay_in_sample_units(real):
+    # streaming operations return a capture: values stay in the capture's sample units and
+    # carry the same full_scale attr, so the envelope of x F (full_scale F) is F times that
+    # of x (full_scale 1) and a measurement on it still reads in units of full scale
+    factor = 32768.0
+    base = quadkit.synth.tone(1e3, sample_rate=64e3, n_samples=6400, amplitude=0.3,
+                              real=real, dtype=np.float64 if real else np.complex128)
+    cap = _scaled(base, factor)
+    env = recovery.envelope(cap)
+    np.testing.assert_allclose(env.values, factor * recovery.envelope(base).values,
+                               rtol=1e-12)
+    assert env.attrs["full_scale"] == factor
+    assert env.attrs["units"] != "FS"  # sample units are FS / 32768 here
+    assert recovery.envelope(base).attrs["units"] == "FS"
+    if real:
+        z = recovery.analytic(cap)
+        assert z.attrs["full_scale"] == factor and z.attrs["units"] != "FS"
+        # whole cycles: the analytic signal of 0.3 FS cos is 0.3 FS exp(j...) (scipy hilbert)
+        assert abs(float(recovery.measure_tone(z).amplitude) - 0.3) < 1e-9

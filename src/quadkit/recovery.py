@@ -21,10 +21,12 @@ Conventions
 A real capture holding ``A cos(2 pi f t + phi)`` gives amplitude ``A`` and phase ``phi``; a
 complex capture holding ``A exp(j (2 pi f t + phi))`` gives the same. ``t`` counts from the
 capture's first sample (``t = 0`` there, also for a sliced capture). Amplitudes are in units
-of full scale ("FS", the ``full_scale`` attr); a complex tone of amplitude 1 FS is 0 dBFS and a
-real one is -3.01 dBFS. Frequencies are absolute (``center_frequency`` + offset); results
-carry the baseband offset as ``offset_hz`` too. Phases are quadrant-correct, in radians unless
-the name ends in ``_deg``.
+of full scale ("FS": sample values divided by the ``full_scale`` attr), and so are offsets and
+residual rms; a complex tone of amplitude 1 FS is 0 dBFS and a real one is -3.01 dBFS, and
+``power_dbm`` = ``power_dbfs`` + ``calibration_db``. The streaming operations return captures
+whose values stay in the capture's sample units, with the same ``full_scale`` attr.
+Frequencies are absolute (``center_frequency`` + offset); results carry the baseband offset as
+``offset_hz`` too. Phases are quadrant-correct, in radians unless the name ends in ``_deg``.
 
 How the estimates are made
 --------------------------
@@ -417,12 +419,12 @@ def _gauss_newton(gram: np.ndarray, ratio: np.ndarray, scale: float) -> np.ndarr
 
 
 def _finish_complex(mom: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs: float,
-                    check: bool, func: str) -> dict:
+                    check: bool, full_scale: float, func: str) -> dict:
     ratio = np.asarray(ratio, np.float64)
     outside = (ratio < -0.5) | (ratio >= 0.5)  # a tone at the band edge folds into the band
     ratio = np.where(outside, (ratio + 0.5) % 1.0 - 0.5, ratio)
-    y = mom[:, 0]
-    energy = mom[:, 3].real
+    y = mom[:, 0] / full_scale  # from here on in units of full scale
+    energy = mom[:, 3].real / full_scale ** 2
     amp = np.abs(y) / n
     resid = np.maximum(energy - np.abs(y) ** 2 / n, 0.0)
     noise = resid / max(n - 2, 1)
@@ -435,7 +437,7 @@ def _finish_complex(mom: np.ndarray, ratio: np.ndarray, n: int, centre: float, f
 
 
 def _finish_real(gram: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs: float,
-                 check: bool, func: str) -> dict:
+                 check: bool, full_scale: float, func: str) -> dict:
     nchan = gram.shape[0]
     amp = np.empty(nchan)
     phase_c = np.empty(nchan)
@@ -448,11 +450,12 @@ def _finish_real(gram: np.ndarray, ratio: np.ndarray, n: int, centre: float, fs:
                 f"{func}: frequency {ratio[ch] * fs:g} Hz offset is at DC or Nyquist, where a "
                 "real tone has no phase to measure; choose a frequency inside (0, fs/2)")
         a, b, c = _solve(g[:3, :3], g[:3, 5], func)
-        amp[ch] = math.hypot(a, b)
+        amp[ch] = math.hypot(a, b) / full_scale  # units of full scale
         phase_c[ch] = math.atan2(-b, a)  # a cos + b sin = A cos(wm + psi): a = A cos, b = -A sin
-        dc[ch] = c
+        dc[ch] = c / full_scale
         theta = np.array([a, b, c])
-        resid[ch] = max(g[5, 5] - 2 * theta @ g[:3, 5] + theta @ g[:3, :3] @ theta, 0.0)
+        resid[ch] = max(g[5, 5] - 2 * theta @ g[:3, 5] + theta @ g[:3, :3] @ theta,
+                        0.0) / full_scale ** 2
     noise = resid / max(n - 4, 1)
     phase0 = np.angle(np.exp(1j * phase_c) * np.conj(_unit_phasor(ratio, centre)))
     # normalised periodogram of a real record: |sum x e^{-jwn}|^2 / (N sigma^2) = N A^2 / 4
@@ -527,6 +530,7 @@ def _estimate(cap: xr.DataArray, frequency_hz: float | None, refine: bool, func:
     fs = _capture.sample_rate(cap)
     fc = float(cap.attrs.get("center_frequency", 0.0))
     real = not _capture.is_complex(cap)
+    full_scale = _capture.full_scale(cap)
     nchan, n = data.shape
     need = _MIN_SAMPLES_SEARCH if (frequency_hz is None or refine) else _MIN_SAMPLES_FIXED
     if n < need:
@@ -546,10 +550,11 @@ def _estimate(cap: xr.DataArray, frequency_hz: float | None, refine: bool, func:
     check = frequency_hz is None or refine  # a lock-in measurement needs no tone test
     if real:
         gram = _pass(data, lazy, _RealGram, ratio, centre, max(centre, 1.0))
-        res = _step(lazy, _finish_real, gram, ratio, n, centre, fs, check, func)
+        res = _step(lazy, _finish_real, gram, ratio, n, centre, fs, check, full_scale, func)
     else:
         mom = _pass(data, lazy, _Moments, ratio, centre)
-        res = _step(lazy, _finish_complex, mom, ratio, n, centre, fs, check, func)
+        res = _step(lazy, _finish_complex, mom, ratio, n, centre, fs, check, full_scale,
+                    func)
     meta = {"fs": fs, "fc": fc, "real": real, "n": n, "nchan": nchan,
             "multi": cap.ndim == 2, "lazy": lazy, "cal": cap.attrs.get("calibration_db")}
     return res, meta
@@ -656,12 +661,13 @@ def measure_tone(cap: xr.DataArray, frequency_hz: float | None = None, *,
     xarray.Dataset
         Per channel (dim ``channel`` for a multi-channel capture): ``frequency_hz``,
         ``offset_hz`` (Hz), ``amplitude`` (FS, peak), ``power_dbfs`` (A^2 complex, A^2/2
-        real; also ``power_dbm`` when the capture has ``calibration_db``), ``phase_rad``/``phase_deg`` (at the first sample), ``snr_db`` (tone power over
-        the residual power per sample; +inf for a noiseless tone), ``residual_rms`` (FS),
-        ``noise_power_dbfs``; for a
-        multi-channel capture also ``relative_phase_rad``/``relative_phase_deg``: each
-        channel's phase minus channel 0's, taken at the capture's centre where it is most
-        precise (for channels holding the same tone it is the same at every instant).
+        real, A in FS; also ``power_dbm`` = ``power_dbfs`` + ``calibration_db`` when the
+        capture has ``calibration_db``), ``phase_rad``/``phase_deg`` (at the first sample),
+        ``snr_db`` (tone power over the residual power per sample; +inf for a noiseless
+        tone), ``residual_rms`` (FS), ``noise_power_dbfs``; for a multi-channel capture also
+        ``relative_phase_rad``/``relative_phase_deg``: each channel's phase minus channel 0's,
+        taken at the capture's centre where it is most precise (for channels holding the
+        same tone it is the same at every instant).
 
     Raises
     ------
@@ -807,6 +813,7 @@ def sine_fit(cap: xr.DataArray, frequency_hz: float | None = None) -> xr.Dataset
 def _finish_fit(gram: np.ndarray, ratio: np.ndarray, n: int, real: bool, full_scale: float,
                 func: str) -> dict:
     coef, dc, resid = _solve_fixed(gram, 1, real, func)
+    coef, dc, resid = coef / full_scale, dc / full_scale, resid / full_scale ** 2  # FS units
     amp = np.abs(coef[:, 0])
     phase0 = np.angle(coef[:, 0])
     rms = np.sqrt(resid / n)
@@ -816,8 +823,9 @@ def _finish_fit(gram: np.ndarray, ratio: np.ndarray, n: int, real: bool, full_sc
     # figures are unbounded and reported as +inf, never NaN
     with np.errstate(divide="ignore"):
         sinad = np.where(rms > 0, 20 * np.log10(a_rms / np.where(rms > 0, rms, 1.0)), np.inf)
-        enob = np.where(rms > 0, np.log2(2 * full_scale / (np.where(rms > 0, nad, 1.0)
-                                                           * math.sqrt(12))), np.inf)
+        # FSR = 2 full_scale, i.e. 2 in the units of full scale used here
+        enob = np.where(rms > 0, np.log2(2.0 / (np.where(rms > 0, nad, 1.0) * math.sqrt(12))),
+                        np.inf)
     return {
         "ratio": ratio, "amplitude": amp, "phase0": phase0, "dc": dc.real,
         "dc_q": dc.imag, "residual_rms": rms, "sinad_db": sinad,
@@ -947,9 +955,10 @@ def _field_nd(res: Any, key: str, meta: dict, shape: tuple, dtype: Any = np.floa
     return da.from_delayed(item, shape=shape, dtype=dtype)
 
 
-def _finish_iq(gram: np.ndarray, func: str) -> dict:
+def _finish_iq(gram: np.ndarray, full_scale: float, func: str) -> dict:
     coef, dc, _ = _solve_fixed(gram, 1, gram.dtype.kind != "c", func)
-    z = coef[:, 0]
+    z = coef[:, 0] / full_scale  # units of full scale
+    dc = dc / full_scale
     return {"i": z.real, "q": z.imag, "amplitude": np.abs(z), "phase0": np.angle(z),
             "dc": dc.real, "dc_q": dc.imag}
 
@@ -997,7 +1006,7 @@ def iq_components(real_cap: xr.DataArray, frequency_hz: float) -> xr.Dataset:
     off = _offset_of(func, frequency_hz, meta["fs"], meta["fc"], meta["real"])
     ratio = np.full(meta["nchan"], off / meta["fs"])
     gram = _pass(data, lazy, _FixedFit, ratio, (1,), meta["real"])
-    res = _step(lazy, _finish_iq, gram, func)
+    res = _step(lazy, _finish_iq, gram, _capture.full_scale(real_cap), func)
     f = _field
     ph = f(res, "phase0", meta)
     out = {
@@ -1019,9 +1028,10 @@ def _fold(ratio: float) -> float:
     return ((ratio + 0.5) % 1.0) - 0.5
 
 
-def _finish_harmonics(gram: np.ndarray, nh: int, real: bool, func: str) -> dict:
+def _finish_harmonics(gram: np.ndarray, nh: int, real: bool, full_scale: float,
+                      func: str) -> dict:
     coef, dc, resid = _solve_fixed(gram, nh, real, func)
-    amp = np.abs(coef)
+    amp = np.abs(coef) / full_scale  # units of full scale
     if np.any(amp[:, 0] <= 0):
         raise MeasurementError(f"{func}: the fundamental has zero amplitude")
     thd = np.sqrt(np.sum(amp[:, 1:] ** 2, axis=1)) / amp[:, 0]
@@ -1105,7 +1115,7 @@ def harmonics(cap: xr.DataArray, fundamental_hz: float, n: int = 10) -> xr.Datas
                                f"need at least {need}")
     ratio = np.full(meta["nchan"], off / fs)
     gram = _pass(data, lazy, _FixedFit, ratio, tuple(range(1, n + 1)), real)
-    res = _step(lazy, _finish_harmonics, gram, n, real, func)
+    res = _step(lazy, _finish_harmonics, gram, n, real, _capture.full_scale(cap), func)
     shape = (meta["nchan"], n)
     fields = {key: _field_nd(res, key, meta, shape)
               for key in ("amplitude", "phase0", "power_dbfs", "level_dbc")}
@@ -1207,6 +1217,12 @@ def _analytic_data(cap: xr.DataArray, method: str | None, func: str) -> tuple[An
     return y.astype(out_dtype), method
 
 
+def _sample_units(cap: xr.DataArray) -> str:
+    """Units of a streaming output in the capture's sample units: "FS" only when a sample
+    unit is one full scale (``full_scale`` = 1); otherwise the values are not in FS."""
+    return "FS" if _capture.full_scale(cap) == 1.0 else "sample units"
+
+
 def _output(cap: xr.DataArray, data: Any, name: str, units: str, long_name: str,
             **attrs: Any) -> xr.DataArray:
     out = _capture.like(cap, data, start_index=_capture.start_index(cap), **attrs)
@@ -1236,7 +1252,9 @@ def analytic(cap: xr.DataArray, *, method: Literal["fft", "fir"] | None = None) 
     -------
     xarray.DataArray
         Complex capture (complex64 for float32 input, complex128 for float64), same dims,
-        time axis and attrs, plus ``analytic_method``.
+        time axis and attrs (``full_scale`` included), plus ``analytic_method``. Values are in
+        the capture's sample units, like any streaming output: ``units`` is "FS" when
+        ``full_scale`` is 1 and "sample units" otherwise (divide by ``full_scale`` for FS).
 
     Examples
     --------
@@ -1247,7 +1265,8 @@ def analytic(cap: xr.DataArray, *, method: Literal["fft", "fir"] | None = None) 
     array([1.    +0.j    , 0.9239+0.3827j, 0.7071+0.7071j], dtype=complex64)
     """
     data, method = _analytic_data(cap, method, "analytic")
-    return _output(cap, data, "iq", "FS", "analytic signal", analytic_method=method)
+    return _output(cap, data, "iq", _sample_units(cap),
+                   "analytic signal (in the capture's sample units)", analytic_method=method)
 
 
 def _complex_data(cap: xr.DataArray, method: str | None, func: str) -> tuple[Any, str | None]:
@@ -1269,7 +1288,11 @@ def envelope(cap: xr.DataArray, *, method: Literal["fft", "fir"] | None = None) 
     Returns
     -------
     xarray.DataArray
-        Real (float32 for complex64 input), units FS, same dims and time axis.
+        Real (float32 for complex64 input), same dims, time axis and attrs (``full_scale``
+        included). A streaming operation, so the values stay in the capture's sample units
+        (a tone of magnitude ``full_scale`` has envelope ``full_scale``): ``units`` is "FS"
+        when ``full_scale`` is 1 and "sample units" otherwise (divide by ``full_scale`` for
+        FS). Measurements on it (:func:`measure_tone`, ...) read it in FS as usual.
 
     Examples
     --------
@@ -1280,7 +1303,8 @@ def envelope(cap: xr.DataArray, *, method: Literal["fft", "fir"] | None = None) 
     """
     z, method = _complex_data(cap, method, "envelope")
     extra = {"analytic_method": method} if method else {}
-    return _output(cap, abs(z), "envelope", "FS", "envelope magnitude", **extra)
+    return _output(cap, abs(z), "envelope", _sample_units(cap),
+                   "envelope magnitude (in the capture's sample units)", **extra)
 
 
 def instantaneous_phase(cap: xr.DataArray, *, unwrap: bool = True,
