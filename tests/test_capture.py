@@ -192,3 +192,21 @@ def test_to_json_of_a_dataarray_keeps_its_axes():
                        attrs={"units": "dBFS/Hz"})
     assert quadkit.to_json(da_) == {"psd": [-3.0, -6.0], "frequency": [1e6, 2e6],
                                     "offset": [-5e5, 5e5], "units": "dBFS/Hz"}
+
+
+def test_accessor_shows_the_signature_without_the_capture():
+    import inspect
+
+    cap = quadkit.synth.tone(1e3, sample_rate=1e6, n_samples=100)
+    params = list(inspect.signature(cap.qk.add_noise).parameters)
+    assert params[0] == "snr_db"
+
+
+def test_integer_samples_take_their_code_range_as_full_scale():
+    codes = np.array([16384, -16384, 16384, -16384], dtype=np.int16)
+    cap = quadkit.capture(codes, sample_rate=1e3)
+    assert cap.dtype == np.float32 and cap.attrs["full_scale"] == 32768.0
+    # half-scale codes: 20 log10(1/2) = -6.02 dBFS (DESIGN power convention)
+    p = 10 * np.log10(np.mean(cap.values.astype(float) ** 2) / cap.attrs["full_scale"] ** 2)
+    assert p == pytest.approx(-6.0206, abs=1e-3)
+    assert quadkit.capture(codes, sample_rate=1e3, full_scale=1.0).attrs["full_scale"] == 1.0

@@ -592,8 +592,8 @@ def test_sinusoidal_phase_modulation_sidebands():
                           sample_rate=FS)
     pn = impairments.phase_noise(cap, nperseg=4096, carrier_hz=0.0)
     curve = pn.phase_noise_curve_dbc_hz
-    near = np.abs(curve.curve_offset.values - fm) <= 3 * pn.attrs["rbw_hz"]
-    line = np.sum(10 ** (curve.values[near] / 10)) * pn.attrs["rbw_hz"]
+    near = np.abs(curve.curve_offset.values - fm) <= 3 * pn.attrs["bin_spacing_hz"]
+    line = np.sum(10 ** (curve.values[near] / 10)) * pn.attrs["bin_spacing_hz"]
     expected = 20 * math.log10(scipy.special.jv(1, beta) / scipy.special.jv(0, beta))
     # the phase detector sees beta^2/4 per side, equal to (J1/J0)^2 to 1e-4 dB at beta = 0.01
     assert 10 * math.log10(line) == pytest.approx(expected, abs=0.02)

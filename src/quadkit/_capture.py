@@ -106,7 +106,9 @@ def capture(
     samples : array_like or dask array, shape (time,) or (channel, time)
         Complex baseband samples (complex64, or complex128 which is kept), or real samples
         for a real IF capture. Python sequences become complex64 / float32; integer arrays
-        become float32 without scaling (use :mod:`quadkit.io` to scale file formats).
+        become float32 without scaling, and unless ``full_scale`` is given it is set to the
+        integer range (32768 for int16), so that dBFS figures are right (use
+        :mod:`quadkit.io` for interleaved IQ integer files and offset-binary codes).
     sample_rate : float
         Sample rate in Hz, positive and finite.
     center_frequency : float, optional
@@ -144,6 +146,10 @@ def capture(
     channel_coord = None
     if isinstance(samples, xr.DataArray) and "channel" in samples.coords:
         channel_coord = samples.coords["channel"]
+    raw_dtype = getattr(getattr(samples, "dtype", None), "kind", None)
+    if raw_dtype in ("i", "u") and "full_scale" not in metadata:
+        # integer codes: full scale is the code range, so dBFS figures mean what they say
+        metadata["full_scale"] = float(2 ** (8 * np.dtype(samples.dtype).itemsize - 1))
     data = _coerce_samples(samples)
     if data.ndim not in (1, 2):
         raise CaptureError(

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import functools
 import importlib
+import inspect
 from typing import Any, Callable
 
 import xarray as xr
@@ -73,6 +74,11 @@ class QuadkitAccessor:
         def bound(*args: Any, **kwargs: Any) -> Any:
             return func(self._obj, *args, **kwargs)
 
+        try:  # help(cap.qk.psd) shows psd's options without the capture
+            sig = inspect.signature(func)
+            bound.__signature__ = sig.replace(parameters=list(sig.parameters.values())[1:])
+        except (TypeError, ValueError):
+            pass
         return bound
 
     def __dir__(self) -> list[str]:

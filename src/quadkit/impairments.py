@@ -1613,8 +1613,10 @@ def phase_noise(
         ``phase_noise_dbc_hz`` along ``offset`` (the chosen offsets);
         ``phase_noise_curve_dbc_hz`` along ``curve_offset`` (every bin from 2 bins up);
         ``rms_phase_deg``, ``rms_jitter_s`` (when the carrier frequency is above 0),
-        ``carrier_offset_hz``, ``carrier_frequency_hz``; attrs ``rbw_hz``, ``nperseg``,
-        ``n_segments``, ``integration_start_hz``, ``integration_stop_hz``.
+        ``carrier_offset_hz``, ``carrier_frequency_hz``; attrs ``rbw_hz`` (ENBW of the
+        window, as in :func:`quadkit.spectral.psd`), ``bin_spacing_hz`` (fs / nperseg, the
+        width to integrate the curve with), ``nperseg``, ``n_segments``,
+        ``integration_start_hz``, ``integration_stop_hz``.
 
     Examples
     --------
@@ -1725,7 +1727,10 @@ def phase_noise(
     coords["offset"] = ("offset", offs, {"units": "Hz", "long_name": "offset from the carrier"})
     coords["curve_offset"] = ("curve_offset", freqs[first:],
                               {"units": "Hz", "long_name": "offset from the carrier"})
-    attrs = {"rbw_hz": rbw, "nperseg": nperseg, "n_segments": int(count.min()),
+    # rbw_hz means what it means for spectral.psd: ENBW x bin spacing (periodic Hann: 1.5 bins,
+    # Harris 1978); the bin spacing itself is what integrations over the curve use.
+    attrs = {"rbw_hz": 1.5 * rbw, "bin_spacing_hz": rbw, "nperseg": nperseg,
+             "n_segments": int(count.min()),
              "window": "hann (periodic)", "integration_start_hz": band[0],
              "integration_stop_hz": band[1], "definition": "IEEE Std 1139: L(f) = S_phi(f) / 2"}
     return result(variables, coords=coords, attrs=attrs)
