@@ -171,3 +171,16 @@ def test_summarize_is_the_documented_function():
     import inspect
 
     assert "scheme" in inspect.signature(quadkit.summarize).parameters
+
+
+def test_bursts_are_called_bursty_and_steady_signals_are_not():
+    steady = _tone_capture(n=2**16)
+    assert not any(w.startswith("bursty") for w in quadkit.summarize(steady).attrs["warnings"])
+    noise = synth.noise(sample_rate=1e6, n_samples=2**16, power_dbfs=-20, rng=5).values
+    x = noise.copy()
+    x[2**14: 2**15] *= 10  # a burst 20 dB up in a quarter of the capture
+    s = quadkit.summarize(quadkit.capture(x, sample_rate=1e6))
+    (w,) = [w for w in s.attrs["warnings"] if w.startswith("bursty")]
+    # 64 blocks of 1024 samples: each block's power is within ~1/sqrt(1024) (about 0.14 dB)
+    # of its true value, so the swing reads 20 dB within a few tenths
+    assert float(w.split("by ")[1].split(" dB")[0]) == pytest.approx(20.0, abs=0.8)

@@ -31,6 +31,8 @@ WARNING_LEVELS: dict[str, float] = {
     "dc_spike_dbc": -30.0,
     # Image rejection below this (dB) is called poor imbalance.
     "image_rejection_db": 30.0,
+    # Power of 1/64 blocks of the capture varying by more than this (dB) is called bursty.
+    "power_swing_db": 6.0,
     # Fewer samples than this make the spectral figures rough.
     "min_samples": 4096,
     # Peak power above this (dBFS) is near full scale.
@@ -183,12 +185,20 @@ def _summarize(cap, *, scheme, symbol_rate, rolloff, max_tones, tone_threshold_d
     else:
         clipped = abs(x) >= clip
     finite = np.isfinite(x)
+    n_blocks = 64
+    block = n // n_blocks
+    swing = None
+    if block >= 128:
+        # mean power of 64 equal blocks: a steady signal's blocks agree to ~1/sqrt(block)
+        swing = (xr.DataArray(mag2, dims=cap.dims).isel(time=slice(0, n_blocks * block))
+                 .coarsen(time=block).mean().data)
     reductions = [
         mag2.astype(np.float64).mean(axis=-1),
         mag2.max(axis=-1),
         clipped.astype(np.float64).mean(axis=-1),
         (~finite).sum(),
         (~finite).ravel().argmax(),
+        swing if swing is not None else np.zeros(1),
     ]
     if _capture.is_lazy(cap):
         import dask
@@ -196,6 +206,7 @@ def _summarize(cap, *, scheme, symbol_rate, rolloff, max_tones, tone_threshold_d
         reductions = dask.compute(*reductions)
     mean_p, peak_p, clip_frac = (np.asarray(r, dtype=float) for r in reductions[:3])
     n_bad, first_bad = int(reductions[3]), int(reductions[4])
+    blocks = np.asarray(reductions[5], dtype=float)
     mean_dbfs = _db(mean_p / scale**2)
     peak_dbfs = _db(np.asarray(peak_p, dtype=float) / scale**2)
     figures: dict[str, Any] = {
@@ -229,6 +240,15 @@ def _summarize(cap, *, scheme, symbol_rate, rolloff, max_tones, tone_threshold_d
         warnings.append(
             f"peak power {float(np.max(peak_dbfs)):.2f} dBFS is near full scale: little headroom"
         )
+    if swing is not None and np.all(np.isfinite(blocks)) and np.max(blocks) > 0:
+        lo = np.min(blocks, axis=-1)
+        swing_db = float(np.max(10 * np.log10(np.max(blocks, axis=-1) / np.maximum(lo, 1e-300))))
+        if swing_db > lv["power_swing_db"]:
+            warnings.append(
+                f"bursty: the power of 1/64 parts of the capture varies by {swing_db:.1f} dB (a "
+                "burst, a gap or fading); noise floor, occupied bandwidth and tones average "
+                "over quiet and busy parts alike: measure a burst alone with cap.isel(time=...)"
+            )
     if n < lv["min_samples"]:
         warnings.append(
             f"only {n} samples: spectral figures are rough (at least {int(lv['min_samples'])} "
