@@ -160,7 +160,8 @@ def test_unsigned_mid_code_and_clipping(tmp_path):
     # (x - 128) / 128 (SigMF reference library autoscale)
     np.testing.assert_array_equal(cap.values, [-1 + 0j, 127 / 128 + 1j / 128])
     loud = quadkit.capture([1.5 + 1.0j, -2.0 - 1.0j], sample_rate=1.0)
-    qio.write_raw(loud, tmp_path / "clip.ci16", dtype="ci16_le")
+    with pytest.warns(RuntimeWarning, match="2 of 2 samples clipped"):
+        qio.write_raw(loud, tmp_path / "clip.ci16", dtype="ci16_le")
     # +1.0 and beyond clip to the largest code 32767, -1.0 and below to -32768
     np.testing.assert_array_equal(np.fromfile(tmp_path / "clip.ci16", "<i2"),
                                   [32767, 32767, -32768, -32768])

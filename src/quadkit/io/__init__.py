@@ -16,7 +16,10 @@ anything else (raw)         :func:`read_raw` (``dtype=``,     :func:`write_raw` 
 :func:`read` and :func:`write` pick by extension. Sample formats are named as SigMF names
 them (:data:`DATATYPES`: ``ci16_le``, ``cf32_le``, ``cu8``, ``ri16_be``, ...); integer
 samples scale to full scale 1.0 (ci16: divided by 32768; unsigned types have the mid-code
-subtracted first). Every reader takes ``chunks=`` and then returns a lazy (dask-backed)
+subtracted first). Writing an integer format divides the samples by the capture's
+``full_scale`` first, so the file reads back with full scale 1.0 and the same dBFS (float
+formats keep the samples and the ``full_scale`` attr); samples beyond full scale are clipped
+with one ``RuntimeWarning``, NaN/Inf raise :class:`quadkit.CaptureError`. Every reader takes ``chunks=`` and then returns a lazy (dask-backed)
 capture whose tasks each read their own piece of the file: they carry (path, byte offset,
 count, datatype), not an open file, so they pickle to ``dask.distributed`` workers, and
 building the graph reads nothing. Writers build the file under a temporary name beside the

@@ -13,7 +13,9 @@ import uuid
 from collections.abc import Iterator
 from pathlib import Path
 
-__all__ = ["atomic_path", "FileExistsCaptureError"]
+from .._errors import CaptureError
+
+__all__ = ["atomic_path", "FileExistsCaptureError", "FolderMissingCaptureError"]
 
 
 class FileExistsCaptureError(FileExistsError, ValueError):
@@ -21,6 +23,14 @@ class FileExistsCaptureError(FileExistsError, ValueError):
 
     A :class:`FileExistsError` (so ``except OSError`` catches it) and a :class:`ValueError`
     (so the command line's user-error handler, which catches ``ValueError``, catches it too).
+    """
+
+
+class FolderMissingCaptureError(FileNotFoundError, CaptureError):
+    """The folder to write into does not exist.
+
+    A :class:`FileNotFoundError` and a :class:`quadkit.CaptureError`, so either handler
+    catches it.
     """
 
 
@@ -76,7 +86,10 @@ def atomic_path(path: str | os.PathLike[str], *, overwrite: bool = False) -> Ite
     """
     target = check_writable(path, overwrite=overwrite)
     if not target.parent.is_dir():
-        raise FileNotFoundError(f"{target}: the folder {target.parent} does not exist")
+        raise FolderMissingCaptureError(
+            f"{target}: the folder {target.parent} does not exist; create it first "
+            "(or give a path in an existing folder)"
+        )
     tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex[:12]}.part")
     try:
         yield tmp

@@ -6,6 +6,7 @@ import json
 import math
 import numbers
 import os
+import warnings
 from collections.abc import Iterator, Mapping
 from pathlib import Path
 from typing import Any
@@ -13,8 +14,9 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .._capture import _check_rate, like
+from .._capture import _check_rate, full_scale, like
 from .._errors import CaptureError
+from ._datatypes import SampleFormat, encode
 
 #: Samples written per block when a capture is written in pieces.
 BLOCK_SAMPLES = 1 << 20
@@ -88,6 +90,66 @@ def iter_blocks(cap: xr.DataArray, block: int = BLOCK_SAMPLES) -> Iterator[np.nd
         if piece.ndim == 2:
             piece = np.ascontiguousarray(piece.T)
         yield piece
+
+
+def encoded_blocks(cap: xr.DataArray, fmt: SampleFormat, source: Any) -> Iterator[bytes]:
+    """The capture's samples encoded in ``fmt``, block by block, as bytes to write.
+
+    Integer formats: the samples are divided by the capture's ``full_scale`` first (the
+    file's full scale is the integer range, read back as full scale 1.0), so the dBFS of
+    every sample is kept. Non-finite samples raise :class:`CaptureError` (naming ``source``,
+    how many and the first one's index; the rest of the capture is only counted, not
+    written). Samples with I or Q beyond full scale (by half an LSB or more) are clipped to
+    the integer range; when the whole capture is written, one :class:`RuntimeWarning` says
+    how many. Float formats take the samples as they are (NaN and Inf included).
+    """
+    integer = fmt.kind != "f"
+    scale = full_scale(cap) if integer else 1.0
+    clipped = 0
+    bad = 0
+    first_bad: tuple[int, int] | None = None  # (time index, channel)
+    done = 0
+    for block in iter_blocks(cap):
+        if integer:
+            finite = np.isfinite(block)
+            if not finite.all():
+                bad += int(block.size - np.count_nonzero(finite))
+                if first_bad is None:
+                    flat = int(np.argmin(finite.ravel()))
+                    ch = flat % block.shape[1] if block.ndim == 2 else 0
+                    t = flat // block.shape[1] if block.ndim == 2 else flat
+                    first_bad = (done + t, ch)
+            done += block.shape[0]
+            if first_bad is not None:
+                continue
+            if scale != 1.0:
+                block = block / block.real.dtype.type(scale)
+            with np.errstate(over="ignore", invalid="ignore"):
+                raw, n_clip = encode(block, fmt, count_clipped=True)
+            clipped += n_clip
+            yield raw.tobytes()
+        else:
+            yield encode(block, fmt).tobytes()
+    if first_bad is not None:
+        where = f"sample {first_bad[0]}"
+        if cap.ndim == 2:
+            where = f"channel {first_bad[1]}, " + where
+        plural = "sample" if bad == 1 else "samples"
+        raise CaptureError(
+            f"{source}: {bad} non-finite {plural} (NaN or Inf) cannot be stored as "
+            f"{fmt.name}; the first is {where}; replace them or write a float datatype "
+            "such as cf32_le"
+        )
+    if clipped:
+        total = cap.size
+        plural = "sample" if clipped == 1 else "samples"
+        warnings.warn(
+            f"{source}: {clipped} of {total} {plural} clipped: the input exceeded full scale "
+            f"(full_scale={scale:g}) and {fmt.name} cannot hold it; scale the capture down or "
+            "write a float datatype such as cf32_le",
+            RuntimeWarning,
+            stacklevel=3,
+        )
 
 
 def jsonable(value: Any) -> Any:

@@ -18,13 +18,16 @@ Integers decode to complex64 (complex) or float32 (real): 8- and 16-bit values a
 float32; 32-bit values are rounded once to float32's 24-bit mantissa. ``cf64``/``rf64`` decode
 to complex128/float64 (kept, not narrowed). Encoding is the inverse: multiply by ``2**(b-1)``,
 round half to even, add the mid-code for unsigned types and clip to the integer range (so
-+1.0 in ci16 becomes 32767).
++1.0 in ci16 becomes 32767). The writers divide a capture by its ``full_scale`` before
+encoding into an integer format (so a capture with ``full_scale=32768`` writes its values
+unchanged as ci16 codes) and warn when samples were clipped.
 """
 
 from __future__ import annotations
 
 import re
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -139,12 +142,15 @@ def decode(raw: np.ndarray, fmt: SampleFormat, *, scratch: bool = False) -> np.n
     return comp
 
 
-def encode(samples: np.ndarray, fmt: SampleFormat) -> np.ndarray:
+def encode(samples: np.ndarray, fmt: SampleFormat, *, count_clipped: bool = False) -> Any:
     """Inverse of :func:`decode`: samples (last axis time) to stored components.
 
     Complex samples are interleaved I, Q along the last axis. Integer formats round half to
     even and clip to the integer range; float formats are cast (cf32 from complex128
-    rounds to float32).
+    rounds to float32). With ``count_clipped=True`` (integer formats) returns
+    ``(components, n)`` where ``n`` counts the samples with I or Q beyond full scale: rounded
+    past the full-scale code ``2**(b-1)`` (+1.0 itself becoming 32767 in ci16 is not counted).
+    Non-finite samples must be removed first (they would become undefined codes).
     """
     samples = np.asarray(samples)
     if fmt.is_complex:
@@ -170,5 +176,12 @@ def encode(samples: np.ndarray, fmt: SampleFormat) -> np.ndarray:
     if fmt.midcode:
         work += work_type(fmt.midcode)
     np.rint(work, out=work)
+    n_clipped = 0
+    if count_clipped:
+        over = (work < info.min) | (work > info.max + 1)
+        if fmt.is_complex:
+            over = over.reshape(-1, 2).any(axis=1)
+        n_clipped = int(np.count_nonzero(over))
     np.clip(work, info.min, info.max, out=work)
-    return work.astype(fmt.component)
+    out = work.astype(fmt.component)
+    return (out, n_clipped) if count_clipped else out

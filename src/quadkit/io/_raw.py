@@ -13,8 +13,8 @@ from .._capture import capture
 from .._checks import check_positive_int
 from .._errors import CaptureError
 from ._atomic import atomic_path
-from ._common import check_frequency, check_rate, existing_file, iter_blocks
-from ._datatypes import encode, parse_datatype
+from ._common import check_frequency, check_rate, encoded_blocks, existing_file
+from ._datatypes import parse_datatype
 from ._lazy import load_samples, whole_samples
 
 __all__ = ["read_raw", "write_raw", "read_npy", "write_npy"]
@@ -120,8 +120,10 @@ def write_raw(
 
     Channels of a ``("channel", "time")`` capture are interleaved sample by sample. No
     metadata is stored: keep the sample rate and centre frequency yourself (or write SigMF).
-    Integer formats scale full scale 1.0 to the integer full scale, round half to even and
-    clip. The file appears only when complete; an existing one is replaced only with
+    Integer formats divide the samples by the capture's ``full_scale`` and map the result's
+    1.0 to the integer full scale (ci16: times 32768), round half to even and clip (a
+    ``RuntimeWarning`` says how many samples were beyond full scale); NaN/Inf raise
+    :class:`quadkit.CaptureError`. Float formats write the samples as they are. The file appears only when complete; an existing one is replaced only with
     ``overwrite=True``. A lazy capture is written chunk by chunk. Returns the path written.
 
     Examples
@@ -141,8 +143,8 @@ def write_raw(
             f"'c{fmt.name[1:]}'"
         )
     with atomic_path(path, overwrite=overwrite) as tmp, open(tmp, "wb") as fh:
-        for block in iter_blocks(cap):
-            fh.write(encode(block, fmt).tobytes())
+        for raw in encoded_blocks(cap, fmt, path):
+            fh.write(raw)
     return Path(path)
 
 

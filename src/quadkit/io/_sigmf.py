@@ -44,7 +44,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .._capture import capture
+from .._capture import capture, start_index
 from .._errors import CaptureError
 from ._atomic import atomic_path, check_writable
 from ._common import (
@@ -52,12 +52,12 @@ from ._common import (
     check_extent,
     check_frequency,
     check_rate,
+    encoded_blocks,
     existing_file,
-    iter_blocks,
     json_error,
     jsonable,
 )
-from ._datatypes import encode, parse_datatype
+from ._datatypes import parse_datatype
 from ._lazy import load_samples, whole_samples
 
 __all__ = ["read_sigmf", "write_sigmf", "SIGMF_VERSION"]
@@ -378,8 +378,10 @@ def _global_fields(cap: xr.DataArray, fmt_name: str, channels: int, source: Any)
     if "hardware" in attrs:
         g["core:hw"] = str(attrs["hardware"])
     g.update(extra.get("global", {}))
+    integer = parse_datatype(fmt_name).kind != "f"
     for key, value in attrs.items():
-        if key in _ATTRS_MAPPED or (key == "full_scale" and float(value) == 1.0):
+        # integer files hold samples divided by full_scale: their full scale is 1.0
+        if key in _ATTRS_MAPPED or (key == "full_scale" and (integer or float(value) == 1.0)):
             continue
         value = jsonable(value)
         try:
@@ -398,14 +400,64 @@ def _global_fields(cap: xr.DataArray, fmt_name: str, channels: int, source: Any)
     return g
 
 
+def _advance(stamp: Any, seconds: float, source: Any) -> str:
+    """RFC 3339 time stamp ``seconds`` after ``stamp`` (nanosecond resolution)."""
+    text = rfc3339(stamp, source=source)
+    if seconds == 0:
+        return text
+    t = np.datetime64(text[:-1], "ns") + np.timedelta64(int(round(seconds * 1e9)), "ns")
+    return str(np.datetime_as_string(t, unit="auto")) + "Z"
+
+
+def _rebase(segments: list[dict], notes: list[dict], start: int, fs: float,
+            source: Any) -> tuple[list[dict], list[dict]]:
+    """Segments and annotations of a capture whose first sample is absolute index ``start``.
+
+    Sample indices become relative to the first sample. Annotations ending before it are
+    dropped, those straddling it start at 0 with their count shortened (one without a
+    count runs to the end and is only moved). Of the segments starting at or before it, the
+    last becomes sample 0 (its time stamp advanced to that sample) and earlier ones are
+    dropped.
+    """
+    if start == 0:
+        return segments, notes
+    out_notes = []
+    for a in notes:
+        a = dict(a)
+        begin = a.get("start_sample", 0) - start
+        count = a.get("sample_count")
+        if isinstance(count, numbers.Integral):
+            if begin + count <= 0:
+                continue
+            if begin < 0:
+                a["sample_count"] = int(begin + count)
+        a["start_sample"] = int(max(begin, 0))
+        out_notes.append(a)
+    ordered = sorted(segments, key=lambda s: s.get("start_sample", 0))
+    before = [k for k, s in enumerate(ordered) if s.get("start_sample", 0) <= start]
+    keep = ordered[before[-1]:] if before else ordered
+    out_segs = []
+    for seg in keep:
+        seg = dict(seg)
+        begin = seg.get("start_sample", 0) - start
+        if begin < 0 and seg.get("start_time") is not None:
+            seg["start_time"] = _advance(seg["start_time"], -begin / fs, source)
+        seg["start_sample"] = int(max(begin, 0))
+        out_segs.append(seg)
+    return out_segs, out_notes
+
+
 def _documents(cap: xr.DataArray, fmt_name: str, source: Any) -> dict:
     attrs = cap.attrs
     n = cap.sizes["time"]
     channels = cap.sizes.get("channel", 1)
+    fs = float(attrs["sample_rate"])
+    start = start_index(cap)
     extra = copy.deepcopy(attrs.get("sigmf_extra") or {})
     inverse_seg = {v: k for k, v in _SEGMENT_KEYS.items()}
     inverse_ann = {v: k for k, v in _ANNOTATION_KEYS.items()}
-    segments = jsonable(attrs.get("segments") or [])
+    segments, notes = _rebase(jsonable(attrs.get("segments") or []),
+                              jsonable(attrs.get("annotations") or []), start, fs, source)
     if segments:
         check_extent(segments, n, source, "segment")
         captures = []
@@ -419,9 +471,8 @@ def _documents(cap: xr.DataArray, fmt_name: str, source: Any) -> dict:
         item.update(extra.get("capture", {}))
         item["core:frequency"] = float(attrs.get("center_frequency", 0.0))
         if attrs.get("start_time") is not None:
-            item["core:datetime"] = rfc3339(attrs["start_time"], source=source)
+            item["core:datetime"] = _advance(attrs["start_time"], start / fs, source)
         captures = [item]
-    notes = jsonable(attrs.get("annotations") or [])
     check_extent(notes, n, source, "annotation")
     annotations = [{inverse_ann.get(k, k): v for k, v in a.items()}
                    for a in sorted(notes, key=lambda a: a.get("start_sample", 0))]
@@ -455,8 +506,12 @@ def write_sigmf(
         SigMF datatype of the data file. Default: the capture's ``file_datatype`` (the
         format it was read in) when that matches its complex/real kind, else ``cf32_le``
         (complex64), ``cf64_le`` (complex128), ``rf32_le`` or ``rf64_le`` (real). Integer
-        formats map full scale 1.0 to the integer full scale (ci16: times 32768), round half
-        to even and clip (+1.0 becomes 32767).
+        formats divide the samples by the capture's ``full_scale``, map the result's 1.0 to
+        the integer full scale (ci16: times 32768), round half to even and clip (+1.0
+        becomes 32767); ``quadkit:full_scale`` is then not written (the file reads back with
+        full scale 1.0, the same dBFS). Samples beyond full scale warn
+        (``RuntimeWarning``, with the count); NaN/Inf raise ``CaptureError``. Float
+        formats keep the samples and write ``quadkit:full_scale`` when it is not 1.0.
 
     Returns
     -------
@@ -471,6 +526,13 @@ def write_sigmf(
     ``core:sha512`` holds the hash of the data written. Attrs without a SigMF field are
     written as ``quadkit:<name>`` global fields (declared in ``core:extensions``).
 
+    A time slice (``cap[250:]``, first sample at absolute index k =
+    ``quadkit._capture.start_index(cap)``) is written as a recording of its own: annotation
+    and segment sample indices are shifted by -k (annotations ending before the slice are
+    dropped, those straddling its start shortened; of the segments starting at or before
+    it, the last one becomes sample 0 and earlier ones are dropped), and ``core:datetime``
+    is moved to the time of the slice's first sample (``start_time`` plus k / sample_rate).
+
     Examples
     --------
     >>> import json, tempfile, pathlib, quadkit
@@ -483,6 +545,15 @@ def write_sigmf(
     ('cf32_le', 868000000.0)
     >>> stem.with_suffix(".sigmf-data").read_bytes().hex()
     '0000803f00000040000040c0000080c0'
+
+    Integer files hold the samples divided by ``full_scale``:
+
+    >>> codes = quadkit.capture([1 + 2j, -3 - 4j], sample_rate=1e6, full_scale=32768)
+    >>> _ = quadkit.io.write_sigmf(codes, stem.with_name("codes"), dtype="ci16_le")
+    >>> stem.with_name("codes.sigmf-data").read_bytes().hex()
+    '01000200fdfffcff'
+    >>> quadkit.io.read_sigmf(stem.with_name("codes")).attrs["full_scale"]
+    1.0
     """
     fmt = parse_datatype(dtype if dtype is not None else _default_datatype(cap),
                          source=f"write_sigmf: dtype for {path}")
@@ -502,8 +573,7 @@ def write_sigmf(
             atomic_path(data_path, overwrite=overwrite) as tmp_data:
         h = hashlib.sha512()
         with open(tmp_data, "wb") as fh:
-            for block in iter_blocks(cap):
-                raw = encode(block, fmt).tobytes()
+            for raw in encoded_blocks(cap, fmt, meta_path):
                 h.update(raw)
                 fh.write(raw)
         doc["global"]["core:sha512"] = h.hexdigest()
@@ -520,8 +590,7 @@ def _write_archive(cap: xr.DataArray, path: Path, fmt: Any, doc: dict, *,
         try:
             h = hashlib.sha512()
             with open(data_tmp, "wb") as fh:
-                for block in iter_blocks(cap):
-                    raw = encode(block, fmt).tobytes()
+                for raw in encoded_blocks(cap, fmt, path):
                     h.update(raw)
                     fh.write(raw)
             doc["global"]["core:sha512"] = h.hexdigest()

@@ -3,6 +3,10 @@
 Sample formats: 16- and 32-bit integer PCM (scaled to full scale 1.0: divided by 32768 and
 2**31) and 32-bit float; 8-bit PCM (unsigned, mid-code 128) and 64-bit float are read too.
 WAV stores the sample rate as a whole number of hertz, so only integer rates can be written.
+Integer PCM is written as the capture divided by its ``full_scale`` (so it reads back with
+full scale 1.0 and the same dBFS); samples beyond full scale are clipped with a
+``RuntimeWarning``, and NaN/Inf raise :class:`quadkit.CaptureError`. A file shorter than its
+header says raises :class:`quadkit.CaptureError`.
 """
 
 from __future__ import annotations
@@ -18,8 +22,8 @@ from .._capture import capture
 from .._checks import check_option
 from .._errors import CaptureError
 from ._atomic import atomic_path
-from ._common import apply_overrides, check_frequency, existing_file, iter_blocks
-from ._datatypes import encode, parse_datatype
+from ._common import apply_overrides, check_frequency, encoded_blocks, existing_file
+from ._datatypes import parse_datatype
 from ._lazy import load_samples, whole_samples
 
 __all__ = ["read_wav", "write_wav"]
@@ -56,7 +60,14 @@ def _parse(p: Path) -> tuple[int, int, int, int, int, int]:
                 if fmt is None:
                     raise CaptureError(f"{p}: WAV 'data' chunk comes before its 'fmt ' chunk")
                 avail = size - (pos + 8)
-                return (*fmt, pos + 8, min(clen, avail))
+                if clen > avail:
+                    raise CaptureError(
+                        f"{p}: truncated: the WAV header declares {clen} bytes of samples but "
+                        f"the file holds only {avail}; {clen - avail} bytes are missing. "
+                        "Copy or record the file again; to use the samples that are there, "
+                        f"read them with quadkit.io.read_raw(..., offset={pos + 8})"
+                    )
+                return (*fmt, pos + 8, clen)
             pos += 8 + clen + (clen & 1)
     raise CaptureError(f"{p}: WAV file has no {'data' if fmt else 'fmt '} chunk")
 
@@ -145,8 +156,11 @@ def write_wav(
     A ``("channel", "time")`` capture writes one WAV channel per real channel, or an I and a
     Q channel per complex channel. WAV stores only the samples and an **integer** sample
     rate in Hz: a capture at a non-integer rate raises ``CaptureError`` (resample it or use
-    SigMF); the centre frequency and other metadata are not stored. ``int16``/``int32`` map
-    full scale 1.0 to 32768 / 2**31 (rounded, clipped: +1.0 becomes 32767). The file appears
+    SigMF); the centre frequency and other metadata are not stored. ``int16``/``int32``
+    divide the samples by the capture's ``full_scale`` and map the result's 1.0 to 32768 /
+    2**31 (rounded half to even, clipped: +1.0 becomes 32767; samples beyond full scale
+    warn with ``RuntimeWarning``; NaN/Inf raise ``CaptureError``). ``float32`` writes the
+    samples as they are (the ``full_scale`` is not stored). The file appears
     only when complete; an existing one is replaced only with ``overwrite=True``. Returns the
     path written.
 
@@ -182,8 +196,8 @@ def write_wav(
     header += b"data" + struct.pack("<I", data_bytes)
     with atomic_path(path, overwrite=overwrite) as tmp, open(tmp, "wb") as fh:
         fh.write(header)
-        for block in iter_blocks(cap):
-            fh.write(encode(block, fmt).tobytes())
+        for raw in encoded_blocks(cap, fmt, path):
+            fh.write(raw)
         if data_bytes & 1:
             fh.write(b"\0")
     return Path(path)
