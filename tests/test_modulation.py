@@ -574,3 +574,112 @@ def test_symbol_clock_error_is_tracked():
     # and without a clock error no drift is reported (the 4-sigma significance test)
     _, plain = burst("16qam", n, rng)
     assert float(qm.analyze(plain, "16qam", symbol_rate=RS).symbol_rate_error_ppm) == 0.0
+
+
+# ------------------------------------------------------------------ analyze: no modulation
+
+def _cw(offset_hz, *, n_samples=8000, snr_db=40.0, rng=1):
+    """A carrier sampled at four samples per symbol of RS_CW (the reviewer's set-up, shorter)."""
+    tone = quadkit.synth.tone(offset_hz, sample_rate=4 * RS_CW, n_samples=n_samples, amplitude=0.5)
+    return quadkit.synth.add_noise(tone, snr_db=snr_db, rng=rng)
+
+
+RS_CW = 1e5
+
+
+@pytest.mark.parametrize("scheme,offset", [
+    (s, o) for s in ("qpsk", "16qam", "64qam", "bpsk", "pi/2-bpsk") for o in (0.0, 0.07, 0.25)
+    # BPSK at Rs/4 and pi/2-BPSK at 0 and 0.07 Rs have no 2nd-power line: the carrier-line
+    # detector refuses them before (test_measurement_errors covers that refusal)
+    if (s, o) not in {("bpsk", 0.25), ("pi/2-bpsk", 0.0), ("pi/2-bpsk", 0.07)}])
+def test_an_unmodulated_carrier_is_refused(scheme, offset):
+    # A carrier at the centre decides to one point; at Rs/4 (where the 4th-power line
+    # aliases to 0) to points stepping 90 deg per symbol; 0.07 Rs is an arbitrary offset.
+    # Each was measured as EVM < 0.5 % before.
+    with pytest.raises(quadkit.MeasurementError, match=f"no {scheme} modulation found: the signal is an unmodulated carrier"):
+        qm.analyze(_cw(offset * RS_CW), scheme, symbol_rate=RS_CW)
+
+
+def test_the_refusal_names_the_carrier_and_the_points_used():
+    with pytest.raises(quadkit.MeasurementError, match=r"one tone at 7000 Hz.*use 1 of the 4 qpsk points"):
+        qm.analyze(_cw(7e3), "qpsk", symbol_rate=RS_CW)
+    with pytest.raises(quadkit.MeasurementError, match=r"one tone at 25000 Hz.*use 4 of the 16 16qam points"):
+        qm.analyze(_cw(25e3), "16qam", symbol_rate=RS_CW)
+
+
+def test_the_demo_cw_capture_is_refused_as_qpsk():
+    # demo_data/bench_tone: a synthesiser tone at +125 kHz (outside the RRC band of 100 kBd)
+    # plus the receiver's DC leakage, which is the carrier found in band.
+    from pathlib import Path
+
+    cap = quadkit.io.read(Path(__file__).resolve().parents[1] / "demo_data" / "bench_tone.sigmf-meta")
+    with pytest.raises(quadkit.MeasurementError, match="no qpsk modulation found"):
+        qm.analyze(cap.isel(time=slice(0, 100_000)), "qpsk", symbol_rate=1e5)
+
+
+@pytest.mark.parametrize("scheme", qm.SCHEMES)
+def test_short_random_bursts_are_not_refused(scheme):
+    # Real traffic of 20 to 40 symbols (random bits) at 25 dB, silence around: the limit
+    # leaves random data a refusal probability of ~1e-6 each (Gaussian approximation), so
+    # none of these 24 bursts per scheme may be refused. A fixed limit below ~0.8 for BPSK
+    # at 20 symbols (or ~0.6 for QPSK) would refuse some of them (empirical 99.9 % quantiles).
+    rng = np.random.default_rng(21)
+    k = qm.constellation(scheme).attrs["bits_per_symbol"]
+    for n in (20, 24, 40) * 8:
+        bits = rng.integers(0, 2, k * n)
+        cap = qm.modulate(bits, scheme, symbol_rate=RS, sample_rate=FS, power_dbfs=0,
+                          offset_hz=rng.uniform(-2e4, 2e4), phase_rad=rng.uniform(0, 6.3))
+        x = np.concatenate([np.zeros(400, np.complex64), cap.values, np.zeros(400, np.complex64)])
+        noisy = awgn(quadkit.capture(x, sample_rate=FS, symbol_rate=RS), 25.0, rng)
+        try:
+            qm.analyze(noisy, scheme, symbol_rate=RS)
+        except quadkit.MeasurementError as err:  # other refusals (too short) are not at issue
+            assert "modulation found" not in str(err) and "IQ origin" not in str(err), (n, str(err))
+
+
+def test_line_limit_is_the_beta_tail():
+    # One DFT bin of N white complex Gaussian samples holds a Beta(1, N-1) fraction of their
+    # power, P(> x) = (1 - x)^(N-1) (chi-square(2) over chi-square(2N), textbook): the limit
+    # solves 4N (1 - x)^(N-1) = 1e-6, floored at 1/2. Real-axis symbols: Beta(1/2, (N-1)/2),
+    # checked with scipy.stats.beta against a numerical tail integral (scipy.integrate.quad).
+    import scipy.integrate
+    import scipy.special
+
+    for n in (16, 20, 27, 28, 100):
+        assert qm._line_limit(n, False) == pytest.approx(max(0.5, 1 - (1e-6 / (4 * n)) ** (1 / (n - 1))), rel=1e-9)
+    for n in (16, 32):
+        x = qm._line_limit(n, True)
+        a, b = 0.5, (n - 1) / 2
+        tail, _ = scipy.integrate.quad(lambda t: t ** (a - 1) * (1 - t) ** (b - 1), x, 1, epsabs=1e-16, epsrel=1e-10)
+        assert tail / scipy.special.beta(a, b) == pytest.approx(1e-6 / (4 * n), rel=1e-5)
+
+
+def test_line_fraction_against_a_padded_fft():
+    # numpy reference: the largest bin of a 64x zero-padded periodogram, over the power.
+    rng = np.random.default_rng(22)
+    k = np.arange(300)
+    tone = 0.7 * np.exp(1j * (2 * np.pi * 0.1234 * k + 0.4))
+    rho, f = qm._line_fraction(tone)
+    assert rho == pytest.approx(1.0, abs=1e-9) and f == pytest.approx(0.1234, abs=1e-9)
+    y = qm._points("16qam")[rng.integers(0, 16, 300)]
+    spec = np.abs(np.fft.fft(y, 64 * y.size)) ** 2 / y.size ** 2
+    # the padded grid lies within 1/128 bin of the maximum: it under-reads by < 0.1 %
+    assert qm._line_fraction(y)[0] == pytest.approx(spec.max() / np.mean(np.abs(y) ** 2), rel=1e-3)
+
+
+def test_a_carrier_reference_measures_a_carrier():
+    # A reference of all-zero bits is a constant symbol: the transmitter was meant to send a
+    # carrier, so an off-centre carrier is measured data-aided, with the AWGN EVM
+    # 1/sqrt(Es/N0) (REFERENCES.md); Es/N0 = SNR x 4 samples per symbol (matched filter keeps
+    # 1/4 of the white noise, common practice). Tolerance: 4 sigma of the chi-square spread.
+    cap = _cw(7e3)
+    res = qm.analyze(cap, "qpsk", symbol_rate=RS_CW, reference=np.zeros(2 * 4000, int))
+    expected = 100 / math.sqrt(10 ** 4.0 * 4)
+    assert float(res.evm_rms_percent) == pytest.approx(expected, rel=4 / (2 * math.sqrt(int(res.symbol_count))))
+    # ... but a carrier at the centre cannot be told from an IQ origin offset
+    with pytest.raises(quadkit.MeasurementError, match="cannot be told from an IQ origin offset"):
+        qm.analyze(_cw(0.0), "qpsk", symbol_rate=RS_CW, reference=np.zeros(2 * 4000, int))
+    # and a modulated reference does not make a carrier pass
+    bits = np.random.default_rng(23).integers(0, 2, 2 * 4000)
+    with pytest.raises(quadkit.MeasurementError, match="no qpsk modulation found"):
+        qm.analyze(cap, "qpsk", symbol_rate=RS_CW, reference=bits)

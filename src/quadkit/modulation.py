@@ -576,6 +576,34 @@ def _decide(y: np.ndarray, points: np.ndarray, scheme: str = "") -> np.ndarray:
     return out
 
 
+def _line_fraction(y: np.ndarray) -> tuple[float, float]:
+    """Fraction of the power of ``y`` held by its strongest spectral line, and its frequency.
+
+    ``max_f |mean_k y_k exp(-j 2 pi f k)|^2 / mean_k |y_k|^2`` over all f (cycles per
+    symbol), found by :func:`_tone_fit`: 1 for a complex exponential (a carrier at any
+    frequency offset), about ln(N)/N for N independent zero-mean symbols.
+    """
+    f, amp, _ = _tone_fit(y, 0.0, 0.5)
+    total = float(np.mean(np.abs(y) ** 2))
+    return (abs(amp) ** 2 / total if total > 0 else 1.0), f
+
+
+def _line_limit(n: int, real: bool) -> float:
+    """Largest line fraction (see :func:`_line_fraction`) accepted from ``n`` data symbols.
+
+    For independent zero-mean symbols (Gaussian approximation) the fraction of one DFT bin
+    is Beta(1, n - 1) distributed for complex symbols and Beta(1/2, (n - 1)/2) for symbols on
+    one axis (BPSK, pi/2-BPSK rotated back). The limit is the point exceeded with probability
+    1e-6 / (4 n) -- n bins, times 4 for the off-bin maximum -- so that random data is
+    refused with a probability of about 1e-6; and at least 1/2 (a line with more power than
+    all the rest is a carrier stronger than the modulation, whatever the data).
+    """
+    from scipy.stats import beta as beta_dist
+
+    a, b = (0.5, (n - 1) / 2) if real else (1.0, n - 1.0)
+    return max(0.5, float(beta_dist.isf(1e-6 / (4 * n), a, b)))
+
+
 def _align(meas: np.ndarray, ref: np.ndarray) -> tuple[int, int, int]:
     """Lag and overlap of ``ref`` against ``meas`` maximising |sum meas_k conj(ref_{k+lag})|."""
     n = meas.size + ref.size - 1
@@ -767,6 +795,27 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     sel = slice(i0, i1)
     burst = burst or i0 + (n - i1) >= 4
     nu, gain, dc, ideal = converge(sel, nu, gain, dc, 2)
+    # 4b. Is the signal modulated at all? An unmodulated carrier at any offset makes the
+    #    corrected symbols one complex exponential, which the decisions would otherwise
+    #    "measure" as excellent quality (a tone at 0 Hz decides to one point, at Rs/4 to
+    #    points stepping 90 deg per symbol). Refused unless the reference is such a line too
+    #    (then the data-aided EVM below measures the carrier against it).
+    y_sel = normalise(sel, nu, gain, dc)
+    rho, f_line = _line_fraction(y_sel)
+    real = scheme in ("bpsk", "pi/2-bpsk")  # symbols on one (rotating) axis
+    limit = _line_limit(y_sel.size, real)
+    ref_is_line = ref is not None and _line_fraction(ref)[0] > _line_limit(ref.size, real)
+    if rho > limit and not ref_is_line:
+        dec = decide(y_sel, idx[sel])
+        used = np.unique(np.round(dec * np.conj(parity_rot(idx[sel])) if pi2 else dec, 9)).size
+        f_hz = df1 + ((f_line + nu + 0.5) % 1.0 - 0.5) * fs / period
+        raise MeasurementError(
+            f"analyze: no {scheme} modulation found: the signal is an unmodulated carrier "
+            f"(one tone at {f_hz:.6g} Hz, modulo the symbol rate, holds {100 * rho:.1f} % of "
+            f"the power of the {y_sel.size} symbols; random data would put at most "
+            f"{100 * limit:.1f} % in one line) and the decided symbols use {used} of the "
+            f"{pts.size} {scheme} points"
+        )
     lag = None
     if ref is not None:
         lag, k0, k1 = _align(normalise(sel, nu, gain, dc), ref)
@@ -778,6 +827,21 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
         sel = slice(i0 + k0, i0 + k1)
         for i in range(2):
             nu, gain, dc = fit(sel, ideal, nu, dc, first_pass=i == 0)
+    # The IQ origin offset must be separable from the symbols: it is not when the ideal
+    # symbols are themselves a carrier at the capture's centre (a constant reference).
+    # Coherence = squared correlation of the two regressors; above 1/2 the offset's least-
+    # squares variance is more than doubled and its split from the carrier arbitrary
+    # (random data gives about 1/N).
+    a_col = ideal * np.exp(2j * np.pi * nu * idx[sel])
+    u_col = dc_reg[sel]
+    coherence = abs(np.vdot(a_col, u_col)) ** 2 / max(
+        float(np.vdot(a_col, a_col).real * np.vdot(u_col, u_col).real), 1e-300)
+    if coherence > 0.5:
+        raise MeasurementError(
+            f"analyze: the {'reference' if ref is not None else 'decided'} symbols form a "
+            "carrier at the capture's centre frequency, which cannot be told from an IQ "
+            "origin offset; shift the carrier off centre or use a modulated reference"
+        )
     z, dc_reg, u, kk = z[sel], dc_reg[sel], u[sel], idx[sel]
     # The IQ offset is always fitted (and reported); removing it from the errors is optional.
     meas = (z - (dc * dc_reg if remove_iq_offset else 0)) / (gain * np.exp(2j * np.pi * nu * kk))
@@ -845,7 +909,8 @@ def analyze(
        noise), so that only the burst is analysed (reported as ``burst_start_s``,
        ``burst_duration_s`` and the attr ``burst``). With ``reference`` the transmitted
        symbols are aligned and the fits are repeated data-aided.
-    6. EVM per 3GPP TS 38.104 / TS 38.101-2 Annex F: rms error vector over the rms of the ideal
+    6. A check that the signal is modulated at all (see below).
+    7. EVM per 3GPP TS 38.104 / TS 38.101-2 Annex F: rms error vector over the rms of the ideal
        symbols; MER = -20 log10(EVM).
 
     A symbol clock off ``symbol_rate`` (a sample-clock offset between transmitter and
@@ -854,6 +919,25 @@ def analyze(
     reported as ``symbol_rate_error_ppm``. Faster timing wander is not tracked. Blind carrier
     recovery needs the M-th power line above the noise (QPSK from about 3 dB Es/N0 with a
     thousand symbols, 16-QAM from about 8 dB), otherwise a MeasurementError says so.
+
+    An unmodulated carrier is refused. Decisions would otherwise turn it into a perfect
+    symbol stream -- a tone at the centre decides to one point, a tone at Rs/4 to points
+    stepping 90 deg per symbol (which also passes a ring or occupancy test) -- and report an
+    excellent EVM. Whatever its offset, a carrier makes the corrected symbols (IQ origin
+    offset removed) one complex exponential, while independent zero-mean data are white. The
+    rule: the strongest spectral line of the N corrected symbols, ``max_f |mean_k y_k
+    exp(-j 2 pi f k)|^2 / mean_k |y_k|^2``, must not exceed the limit that random data pass
+    with probability 1 - 1e-6 (Gaussian approximation: one DFT bin holds a Beta(1, N - 1)
+    fraction, Beta(1/2, (N - 1)/2) for BPSK and pi/2-BPSK, whose symbols lie on one axis; the
+    search over about 4N frequencies is accounted for), nor 1/2 (a carrier with more power
+    than the modulation). The limit is 70 % at 16 symbols, 50 % from 28 symbols on (89 % and
+    66 % for BPSK at 16 and 32, 50 % from 51); a carrier is caught once its symbol SNR exceeds
+    about 0 dB for long captures, 4 dB at 16 symbols. Data that are really one repeated
+    point (all-zero bits, a 0, 1, 2, 3 QPSK cycle) are refused too: they cannot be told from a
+    carrier. A ``reference`` that is itself such a line (a constant pattern) exempts the
+    capture, since then a carrier is expected, and its data-aided EVM is measured; only a
+    carrier at the capture's centre frequency cannot be measured that way, since it cannot be
+    told from an IQ origin offset (MeasurementError).
 
     Decision-directed EVM under-reads at low SNR (errors past a decision boundary are
     measured to the wrong point); give ``reference`` for data-aided figures.
@@ -901,8 +985,9 @@ def analyze(
     Raises
     ------
     MeasurementError
-        If symbol_rate >= sample_rate, fewer than 16 symbols are found, or there is no
-        signal of the scheme (no carrier line above the noise).
+        If symbol_rate >= sample_rate, fewer than 16 symbols are found, there is no
+        signal of the scheme (no carrier line above the noise), or the signal is an
+        unmodulated carrier (see above).
 
     Examples
     --------
