@@ -415,6 +415,93 @@ def test_iq_offset_of_a_known_dc():
     assert float(kept.iq_offset_db) == pytest.approx(float(res.iq_offset_db), abs=0.5)
 
 
+def _leaky(level_db, *, scheme="qpsk", n=2000, es_n0_db=25.0, cfo=0.03 * RS, seed=0, lead=0):
+    """A burst at a carrier offset of a few % of Rs with a zero-IF receiver's LO leakage:
+    a DC of power level_db relative to the mean power of the modulated signal, present over
+    the whole capture (also in any silence before and after the burst)."""
+    rng = np.random.default_rng(seed)
+    bits, cap = burst(scheme, n, rng, offset_hz=cfo, phase_rad=rng.uniform(0, 2 * np.pi),
+                      dtype=np.complex128)
+    clean = np.concatenate([np.zeros(lead), cap.values, np.zeros(lead)])
+    # signal power measured with numpy over the symbols (pulse tails excluded)
+    inner = clean[lead + 16 * 4: lead + (16 + n) * 4]
+    p_sig = float(np.mean(np.abs(inner) ** 2))
+    dc = math.sqrt(p_sig * 10 ** (level_db / 10)) * np.exp(0.7j)
+    x = awgn(quadkit.capture(clean, sample_rate=FS, symbol_rate=RS), es_n0_db, rng).values + dc
+    return bits, quadkit.capture(x.astype(np.complex64), sample_rate=FS), dc, p_sig
+
+
+@pytest.mark.parametrize("level_db", [-20.0, -3.0, 0.0, 10.0])
+def test_strong_lo_leakage_is_removed(level_db):
+    # LO leakage of -20 .. +10 dB relative to the signal, CFO 3 % of Rs, Es/N0 = 25 dB.
+    # Left in the M-th power estimate, -3 and 0 dB read EVM ~48 % and +10 dB was refused as
+    # an unmodulated carrier. With the offset removed the EVM is that of the noise alone:
+    # 1/sqrt(Es/N0) (REFERENCES.md, 3GPP TS 38.104 EVM definition), the truncation floor
+    # adding in power; tolerance 4 sigma of the chi-square spread, 1/(2 sqrt N) relative.
+    n, es_n0_db = 2000, 25.0
+    bits, cap, dc, p_sig = _leaky(level_db, n=n, es_n0_db=es_n0_db)
+    assert cap.dtype == np.complex64
+    expected = math.hypot(100 / math.sqrt(10 ** (es_n0_db / 10)), _isi_floor_percent())
+    tol = 4 / (2 * math.sqrt(n))
+    aided = qm.analyze(cap, "qpsk", symbol_rate=RS, reference=bits)
+    blind = qm.analyze(cap, "qpsk", symbol_rate=RS)
+    for res in (aided, blind):
+        assert int(res.symbol_count) >= n - 2
+        assert float(res.evm_rms_percent) == pytest.approx(expected, rel=tol)
+        # the CRB (Rife & Boorstyn, test above) at 2000 symbols and 25 dB is 0.12 Hz rms
+        assert float(res.frequency_error_hz) == pytest.approx(0.03 * RS, abs=2.0)
+        # iq_offset_db = 10 log10(|dc|^2 / P_signal) (common practice: DC 0.01 on unit power
+        # is -40 dB), P_signal the numpy mean power of the clean burst. The LS fit of the DC
+        # has a relative amplitude std of sqrt(N0 / N) / |dc| (per-symbol noise N0 =
+        # 1/(Es/N0)): 4 sigma of it in dB, plus 0.1 dB for the conversion of the fitted
+        # symbol gain to the capture's power (truncated matched filter, sampled power).
+        delta = math.sqrt(10 ** (-es_n0_db / 10) / n) / abs(dc)
+        want = 10 * math.log10(abs(dc) ** 2 / p_sig)
+        assert want == pytest.approx(level_db, abs=1e-9)
+        tol_db = 20 * math.log10(1 + 4 * delta) + 0.1
+        assert float(res.iq_offset_db) == pytest.approx(want, abs=tol_db)
+    # decisions are right at 25 dB (QPSK symbol error rate ~1e-70), so blind equals aided
+    assert float(blind.evm_rms_percent) == pytest.approx(float(aided.evm_rms_percent), rel=1e-6)
+    # Left in the errors (remove_iq_offset=False), the offset adds 100 |dc| / sqrt(P) in power
+    # to the noise EVM (RRC matched filter gain 1 at 3 % of Rs, inside its flat band); 5 %
+    # tolerance covers the noise term's spread where it dominates (-20 dB: 10 % vs 5.6 %).
+    kept = qm.analyze(cap, "qpsk", symbol_rate=RS, reference=bits, remove_iq_offset=False)
+    assert float(kept.evm_rms_percent) == pytest.approx(
+        math.hypot(expected, 100 * abs(dc) / math.sqrt(p_sig)), rel=0.05)
+
+
+@pytest.mark.parametrize("scheme,level_db", [("16qam", 0.0), ("pi/2-bpsk", 10.0)])
+def test_burst_in_silence_with_lo_leakage(scheme, level_db):
+    # The leakage fills the silence too: at 0 dB the burst is only 3 dB above it, and at
+    # +10 dB 0.4 dB, so burst detection must look at the capture less its mean. The burst
+    # is found (symbol count, as in the burst test above), EVM and iq_offset_db as above.
+    n, es_n0_db, lead = 1500, 25.0, 12000
+    bits, cap, dc, p_sig = _leaky(level_db, scheme=scheme, n=n, es_n0_db=es_n0_db, lead=lead,
+                                  seed=3, cfo=-0.04 * RS)
+    res = qm.analyze(cap, scheme, symbol_rate=RS, reference=bits)
+    assert abs(int(res.symbol_count) - n) <= 2 and "burst found" in res.attrs["burst"]
+    expected = math.hypot(100 / math.sqrt(10 ** (es_n0_db / 10)), _isi_floor_percent())
+    assert float(res.evm_rms_percent) == pytest.approx(expected, rel=4 / (2 * math.sqrt(n)))
+    delta = math.sqrt(10 ** (-es_n0_db / 10) / n) / abs(dc)
+    want = 10 * math.log10(abs(dc) ** 2 / p_sig)  # = level_db, by construction
+    assert float(res.iq_offset_db) == pytest.approx(want, abs=20 * math.log10(1 + 4 * delta) + 0.1)
+
+
+def test_a_carrier_behind_strong_leakage_is_still_refused():
+    # Removing the origin offset must not make a carrier pass: a tone off centre under a
+    # +10 dB DC is still one spectral line of the corrected symbols, ...
+    cw = _cw(7e3)
+    dc = np.complex64(0.5 * math.sqrt(10) * np.exp(0.3j))  # tone amplitude 0.5: +10 dB
+    with pytest.raises(quadkit.MeasurementError,
+                       match="no qpsk modulation found: the signal is an unmodulated carrier"):
+        qm.analyze(cw + dc, "qpsk", symbol_rate=RS_CW)
+    # ... and leakage with noise alone (nothing modulated once the offset is removed) is a
+    # carrier at the centre: refused as such, not measured as modulation.
+    noise_only = quadkit.synth.noise(sample_rate=4 * RS_CW, n_samples=8000, power_dbfs=-40, rng=2)
+    with pytest.raises(quadkit.MeasurementError, match="unmodulated carrier .one tone at 0 Hz"):
+        qm.analyze(noise_only + dc, "qpsk", symbol_rate=RS_CW)
+
+
 def test_phase_and_magnitude_error_of_a_known_rotation_free_distortion():
     # A residual phase error: a sinusoidal phase modulation of amplitude 2 deg at 1/50 of the
     # symbol rate (too fast for the fitted linear phase) has rms 2/sqrt(2) deg. Memoryless

@@ -498,7 +498,9 @@ def _find_burst(x: np.ndarray, sps: float) -> tuple[int, int, bool]:
     """A generous sample range [start, stop) around the strongest burst, and whether the
     capture holds silence at all.
 
-    The power averaged over 16 symbols (its relative spread is then about 1/4 even for
+    ``x`` is the capture less its IQ origin offset (the mean), so that a receiver's LO
+    leakage, present in the silence as well, neither hides the burst nor fakes one. The power
+    averaged over 16 symbols (its relative spread is then about 1/4 even for
     256-QAM) is split at the geometric mean of its 1st and 99th percentiles when those differ
     by more than 10 dB; otherwise the capture is taken as continuous. Runs above the split
     that are closer than two averaging lengths are merged (dips of the signal's own power),
@@ -506,8 +508,8 @@ def _find_burst(x: np.ndarray, sps: float) -> tuple[int, int, bool]:
     The exact first and last symbols are found later from the symbols themselves.
     """
     p = np.abs(x) ** 2
-    if not np.any(p > 0):
-        raise MeasurementError("analyze: the capture holds no signal (all samples are zero)")
+    if not np.any(p > 0):  # a constant capture: nothing but the origin offset
+        return 0, x.size, False
     width = max(1, min(int(round(16 * sps)), x.size // 8))
     ps = _moving_mean(p, width)
     lo, hi = np.percentile(ps, [1, 99])
@@ -623,7 +625,31 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
                  ref: np.ndarray | None, max_offset_hz: float, remove_iq_offset: bool) -> dict:
     sps = fs / rs
     n_x = x.size
-    a, b, burst = _find_burst(x, sps)
+    if not np.any(x != 0):
+        raise MeasurementError("analyze: the capture holds no signal (all samples are zero)")
+    pts = _points(scheme)
+    pi2 = scheme == "pi/2-bpsk"
+    m_pow = _POWER[scheme]
+    real = scheme in ("bpsk", "pi/2-bpsk")  # symbols on one (rotating) axis
+    ref_is_line = ref is not None and _line_fraction(ref)[0] > _line_limit(ref.size, real)
+    # 0. The IQ origin offset (LO leakage of a zero-IF receiver: a line at 0 Hz of the
+    #    capture, however strong) is removed before any recovery step: it would swamp the
+    #    M-th power line (its M-th power is a line at 0 Hz), bias the timing and the blind
+    #    gain. Zero-mean data leave the mean of the samples at the offset, up to the data's
+    #    own share: a signal of power P and about one symbol rate of bandwidth has a mean
+    #    of variance ~P / N over N symbols. The mean over the capture serves to find the
+    #    burst, the mean over the burst (with its margin) is the first estimate, and the
+    #    fits of step 3 refine it jointly with the carrier. A mean within 4 sigma of that
+    #    spread is not used (an exact zero is a better start than data self-noise of 1/sqrt(N)
+    #    of the amplitude, which would upset the first decisions on dense constellations).
+    def significant_mean(seg: np.ndarray) -> complex:
+        m = complex(np.mean(seg))
+        p_rest = float(np.mean(np.abs(seg - m) ** 2))
+        return m if abs(m) ** 2 > 16 * p_rest * sps / seg.size else 0j
+
+    a, b, burst = _find_burst(x - significant_mean(x), sps)
+    dc0 = significant_mean(x[a:b])
+    x0 = x - dc0 if dc0 else x
     u_lo, u_hi = float(a), float(b - 1)
     if a == 0:  # the signal runs into the capture's edge: keep the matched filter inside
         u_lo = max(u_lo, _EST_SPAN * sps)
@@ -634,10 +660,6 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
             f"analyze: only about {max(0, int((u_hi - u_lo) / sps + 1))} symbols to analyse, "
             f"need at least {_MIN_SYMBOLS}; give a longer capture or burst"
         )
-    pts = _points(scheme)
-    pi2 = scheme == "pi/2-bpsk"
-    m_pow = _POWER[scheme]
-
     def instants(sig: np.ndarray) -> tuple[np.ndarray, float]:
         # Symbol timing from the symbol-rate line of the squared magnitude of the matched
         # filter output (Oerder & Meyr 1988, memory); it does not depend on the carrier
@@ -692,14 +714,49 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
 
     # 1. Timing, then the coarse carrier frequency from the line of the M-th power of the
     #    symbols (Mengali & D'Andrea 1997, memory); pi/2-BPSK is first rotated back to BPSK.
-    u, _ = instants(x)
-    zc = _mf_at(x[None, :], u, sps, beta, _EST_SPAN / 2)[0]
+    u, _ = instants(x0)
+    zc = _mf_at(x0[None, :], u, sps, beta, _EST_SPAN / 2)[0]
     if pi2:
         zc = zc * np.conj(_pi2_rotation(zc.size))
     half = m_pow * max_offset_hz / rs
     fr, _, ratio = _tone_fit(zc ** m_pow, 0.0, min(half, 0.5))
+    # The same line test as in step 4b below, on these first symbols: a tone outside the
+    # band that leaks through the short estimation filter is a line here and yields an
+    # M-th power line, yet the full matched filter of the later steps suppresses it, so
+    # that only noise would be "measured" there. Kept for after the fits (4b).
+    rho1, f1 = _line_fraction(zc)
+    limit1 = _line_limit(zc.size, real)
+    line1 = rho1 > limit1 and not ref_is_line
+
+    def carrier_error(f_hz: float, rho: float, n_sym: int, limit: float,
+                      tail: str) -> MeasurementError:
+        return MeasurementError(
+            f"analyze: no {scheme} modulation found: the signal is an unmodulated carrier "
+            f"(one tone at {f_hz:.6g} Hz, modulo the symbol rate, holds {100 * rho:.1f} % of "
+            f"the power of the {n_sym} symbols; random data would put at most "
+            f"{100 * limit:.1f} % in one line){tail}"
+        )
     n_ind = max(2.0, zc.size * 2 * min(half, 0.5))
     if ratio < (math.log(n_ind) + 6.0) / math.log(2.0):
+        # Nothing modulated is left once the origin offset is removed. If the offset holds
+        # most of the in-band power (a unit-energy RRC matched filter passes a constant
+        # with gain H(0) = 1), the capture is a carrier at the centre frequency.
+        if abs(dc0) ** 2 > float(np.mean(np.abs(zc) ** 2)):
+            if ref_is_line:
+                raise MeasurementError(
+                    "analyze: the reference symbols form a carrier at the capture's centre "
+                    "frequency, which cannot be told from an IQ origin offset; shift the "
+                    "carrier off centre or use a modulated reference"
+                )
+            share = abs(dc0) ** 2 / (abs(dc0) ** 2 + float(np.mean(np.abs(zc) ** 2)))
+            raise MeasurementError(
+                f"analyze: no {scheme} modulation found: the signal is an unmodulated carrier "
+                f"(one tone at 0 Hz, the capture's centre, i.e. an IQ origin offset, holds "
+                f"{100 * share:.1f} % of the in-band power, and no {m_pow}th-power carrier "
+                "line of modulated symbols is left once it is removed)"
+            )
+        if line1:
+            raise carrier_error((f1 + 0.5) % 1.0 * rs - rs / 2, rho1, zc.size, limit1, "")
         raise MeasurementError(
             f"analyze: no {scheme} signal found (the {m_pow}th-power carrier line of the "
             f"symbols is not above the noise: peak/median {ratio:.1f}); check the scheme, "
@@ -708,8 +765,10 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     df1 = fr * rs / m_pow
     rot = oscillator(-df1 / fs, 0, n_x, np.complex128)
     x1 = np.stack((x * rot, rot))  # signal and the capture's DC, both derotated
-    # 2. Timing again on the derotated signal, and the symbols with the full matched filter.
-    u, period = instants(x1[0])
+    # 2. Timing again on the derotated signal (origin offset removed), and the symbols with
+    #    the full matched filter. The symbols z keep the offset; the model is
+    #    z = gain * ideal * exp(j 2 pi nu k) + dc * dc_reg, dc starting at the mean.
+    u, period = instants(x0 * rot)
     z, dc_reg = _mf_at(x1, u, sps, beta, _MF_SPAN / 2)
     idx = np.arange(z.size)  # symbol index; pi/2-BPSK parity and the phase ramp use it
     m_ref = np.mean(pts ** m_pow)
@@ -755,12 +814,13 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     #    region even for 256-QAM.
     n = z.size
     mid = slice(n // 4, n - n // 4) if n >= 4 * _MIN_SYMBOLS else slice(0, n)
-    zb = z * np.conj(parity_rot(idx)) if pi2 else z
+    z0 = z - dc0 * dc_reg
+    zb = z0 * np.conj(parity_rot(idx)) if pi2 else z0
     nu_m, _, _ = _tone_fit(zb ** m_pow, 0.0, 0.5)
     centre = (n - 1) / 2  # phase referred to the middle: uncorrelated with the frequency error
     amp = np.mean(zb ** m_pow * np.exp(-2j * np.pi * nu_m * (idx - centre)))
     nu = nu_m / m_pow
-    gain = math.sqrt(np.mean(np.abs(z[mid]) ** 2) / np.mean(np.abs(pts) ** 2)) * \
+    gain = math.sqrt(np.mean(np.abs(z0[mid]) ** 2) / np.mean(np.abs(pts) ** 2)) * \
         np.exp(1j * ((np.angle(amp) - np.angle(m_ref)) / m_pow - 2 * np.pi * nu * centre))
     # The M-th power phase of 300 256-QAM symbols scatters by ~3 deg (self-noise), more than
     # decisions on the outer points tolerate: search the ambiguity interval (+-180/M deg) in
@@ -768,14 +828,14 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     # the inner half (by magnitude) counts: the blind gain is a few % off, which moves the
     # outer points across decision boundaries but the inner ones hardly.
     search = np.arange(max(0, n // 2 - 128), min(n, n // 2 + 128))
-    y0 = normalise(slice(search[0], search[-1] + 1), nu, gain, 0j)
+    y0 = normalise(slice(search[0], search[-1] + 1), nu, gain, dc0)
     inner = np.abs(y0) <= np.median(np.abs(y0))
     y0, ix0 = y0[inner], search[inner]
     trial = np.deg2rad(np.arange(-180 / m_pow, 180 / m_pow, 0.5))
     cost = [np.sum(np.abs(y0 * np.exp(-1j * t) - decide(y0 * np.exp(-1j * t), ix0)) ** 2)
             for t in trial]
     gain = gain * np.exp(1j * trial[int(np.argmin(cost))])
-    dc = 0j
+    dc = dc0
     length = max(4 * _MIN_SYMBOLS, n // 16)
     while True:
         win = slice(max(0, n // 2 - length // 2), min(n, n // 2 + length // 2))
@@ -802,20 +862,16 @@ def _analyze_one(x: np.ndarray, scheme: str, fs: float, rs: float, beta: float,
     #    (then the data-aided EVM below measures the carrier against it).
     y_sel = normalise(sel, nu, gain, dc)
     rho, f_line = _line_fraction(y_sel)
-    real = scheme in ("bpsk", "pi/2-bpsk")  # symbols on one (rotating) axis
     limit = _line_limit(y_sel.size, real)
-    ref_is_line = ref is not None and _line_fraction(ref)[0] > _line_limit(ref.size, real)
     if rho > limit and not ref_is_line:
         dec = decide(y_sel, idx[sel])
         used = np.unique(np.round(dec * np.conj(parity_rot(idx[sel])) if pi2 else dec, 9)).size
         f_hz = df1 + ((f_line + nu + 0.5) % 1.0 - 0.5) * fs / period
-        raise MeasurementError(
-            f"analyze: no {scheme} modulation found: the signal is an unmodulated carrier "
-            f"(one tone at {f_hz:.6g} Hz, modulo the symbol rate, holds {100 * rho:.1f} % of "
-            f"the power of the {y_sel.size} symbols; random data would put at most "
-            f"{100 * limit:.1f} % in one line) and the decided symbols use {used} of the "
-            f"{pts.size} {scheme} points"
-        )
+        raise carrier_error(f_hz, rho, y_sel.size, limit, f" and the decided symbols use "
+                            f"{used} of the {pts.size} {scheme} points")
+    if line1:  # a line in the first symbols only (see step 1): out-of-band leakage
+        raise carrier_error((f1 + 0.5) % 1.0 * rs - rs / 2, rho1, zc.size, limit1,
+                            " before the full matched filter, which leaves only noise")
     lag = None
     if ref is not None:
         lag, k0, k1 = _align(normalise(sel, nu, gain, dc), ref)
@@ -888,8 +944,16 @@ def analyze(
     """Demodulate an RRC-shaped capture and measure its modulation quality.
 
     Works blind: the carrier frequency offset (up to ``max_offset_hz``), carrier phase,
-    symbol timing and gain are unknown. The steps, per channel:
+    symbol timing, gain and IQ origin offset are unknown. The steps, per channel:
 
+    0. The IQ origin offset (a line at the capture's 0 Hz, such as the LO leakage of a
+       zero-IF receiver, which may be stronger than the signal) is estimated by the mean of
+       the samples and removed before anything else, since it would swamp the M-th power
+       line and upset timing and gain; after a carrier frequency offset it stays at 0 Hz
+       while the signal moves. The mean over the whole capture is removed for the burst
+       detection, the mean over the burst is the start of the joint fit in step 4. A mean
+       within 4 sigma of the data's own contribution (variance about P / N for N symbols of
+       power P) is not used.
     1. Burst detection by energy. When the capture holds silence (the power averaged over 16
        symbols varies by more than 10 dB) the longest burst, with a margin, is kept;
        otherwise the whole capture, less 8 symbols at each edge.
@@ -904,7 +968,8 @@ def analyze(
     4. Fine frequency and phase: M-th power of the symbols, a search of the phase ambiguity
        interval, then decision-directed maximum-likelihood fits over windows growing from
        the middle of the burst, jointly with a complex gain (normalising to the
-       constellation's mean energy) and the IQ origin offset.
+       constellation's mean energy) and the IQ origin offset (modelled at the capture's
+       0 Hz, i.e. at minus the carrier offset once the symbols are derotated).
     5. The burst's first and last symbols by a likelihood-ratio change-point test (symbol or
        noise), so that only the burst is analysed (reported as ``burst_start_s``,
        ``burst_duration_s`` and the attr ``burst``). With ``reference`` the transmitted
@@ -927,15 +992,20 @@ def analyze(
     offset removed) one complex exponential, while independent zero-mean data are white. The
     rule: the strongest spectral line of the N corrected symbols, ``max_f |mean_k y_k
     exp(-j 2 pi f k)|^2 / mean_k |y_k|^2``, must not exceed the limit that random data pass
-    with probability 1 - 1e-6 (Gaussian approximation: one DFT bin holds a Beta(1, N - 1)
+    with probability 1 - 1e-6 (the same test also runs on the first symbols of step 1, which
+    catches a tone outside the band that only the short estimation filter lets through;
+    Gaussian approximation: one DFT bin holds a Beta(1, N - 1)
     fraction, Beta(1/2, (N - 1)/2) for BPSK and pi/2-BPSK, whose symbols lie on one axis; the
     search over about 4N frequencies is accounted for), nor 1/2 (a carrier with more power
     than the modulation). The limit is 70 % at 16 symbols, 50 % from 28 symbols on (89 % and
     66 % for BPSK at 16 and 32, 50 % from 51); a carrier is caught once its symbol SNR exceeds
     about 0 dB for long captures, 4 dB at 16 symbols. Data that are really one repeated
     point (all-zero bits, a 0, 1, 2, 3 QPSK cycle) are refused too: they cannot be told from a
-    carrier. A ``reference`` that is itself such a line (a constant pattern) exempts the
-    capture, since then a carrier is expected, and its data-aided EVM is measured; only a
+    carrier. A carrier at the capture's centre is the IQ origin offset itself: when nothing
+    with an M-th power line is left once the offset is removed and the offset holds most of
+    the in-band power, the capture is refused as an unmodulated carrier at 0 Hz (LO leakage
+    and noise alone read the same). A ``reference`` that is itself such a line (a constant
+    pattern) exempts the capture, since then a carrier is expected, and its data-aided EVM is measured; only a
     carrier at the capture's centre frequency cannot be measured that way, since it cannot be
     told from an IQ origin offset (MeasurementError).
 
@@ -971,7 +1041,8 @@ def analyze(
         Scalars (per channel along ``channel``): ``evm_rms_percent``, ``evm_peak_percent``,
         ``mer_db``, ``frequency_error_hz`` (carrier offset from the capture's centre,
         baseband Hz), ``carrier_frequency_hz`` (absolute), ``iq_offset_db`` (origin offset
-        power over the signal power), ``phase_error_rms_deg``,
+        power over the mean power of the modulated signal in the capture: a DC of 0.01 on a
+        unit-power signal reads -40 dB; positive when the leakage is the stronger), ``phase_error_rms_deg``,
         ``magnitude_error_rms_percent`` (magnitude errors over the rms reference),
         ``symbol_count``, ``symbol_rate_error_ppm`` (measured symbol clock against
         ``symbol_rate``; 0 when no significant drift), ``burst_start_s`` and
