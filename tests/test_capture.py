@@ -210,3 +210,14 @@ def test_integer_samples_take_their_code_range_as_full_scale():
     p = 10 * np.log10(np.mean(cap.values.astype(float) ** 2) / cap.attrs["full_scale"] ** 2)
     assert p == pytest.approx(-6.0206, abs=1e-3)
     assert quadkit.capture(codes, sample_rate=1e3, full_scale=1.0).attrs["full_scale"] == 1.0
+
+
+def test_xarray_chunked_capture_builds_lazily():
+    from quadkit import mixing
+
+    cap = quadkit.synth.tone(1e3, sample_rate=1e6, n_samples=1000)
+    lazy = cap.chunk({"time": 300}).isel(time=slice(100, None))
+    with raise_if_dask_computes():
+        assert _capture.start_index(lazy) == 100
+        out = mixing.shift(lazy, 1e3)
+    assert _capture.is_lazy(out)

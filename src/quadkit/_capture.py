@@ -219,6 +219,11 @@ def first_time(cap: xr.DataArray) -> float:
     """Time in seconds of the capture's first sample (0 unless it was sliced)."""
     if cap.sizes.get("time", 0) == 0:
         return 0.0
+    index = cap.xindexes.get("time")
+    if isinstance(index, RangeIndex):
+        # read from the index itself: after ``cap.chunk()`` the coordinate variable is a dask
+        # array, and touching its values would run a computation
+        return float(index.start)
     return float(cap["time"].isel(time=0).values)
 
 

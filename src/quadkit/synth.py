@@ -278,6 +278,11 @@ def add_noise(
     real capture the band is 0 to fs/2 and ``bandwidth_hz`` defaults to fs/2. With
     ``exact_power`` the realised noise power is scaled to exactly that value.
 
+    The noise at each sample depends only on ``rng``, the channel and the sample's absolute
+    index, so a lazy capture gives the same samples as the in-memory one whatever its
+    chunking, and a slice of the result equals the result of the slice (exact power aside).
+    For a lazy capture the signal and noise powers are reductions in the same graph.
+
     Examples
     --------
     >>> import numpy as np, quadkit
@@ -298,31 +303,52 @@ def add_noise(
         raise ValueError(
             f"add_noise: bandwidth_hz={bandwidth_hz} exceeds the capture's band of {band} Hz"
         )
-    gen = _rng(rng)
+    seed = int(_rng(rng).integers(0, 2**63))
     data = cap.data
-    if _capture.is_lazy(cap):
+    first = _capture.start_index(cap)
+    lazy = _capture.is_lazy(cap)
+    if lazy:
         import dask.array as da
 
-        power = (abs(data) ** 2).mean(axis=-1, keepdims=True)
-        seeds = gen.integers(0, 2**63, size=data.numblocks)
-
-        def block_noise(block, power, block_info=None):
-            loc = block_info[0]["chunk-location"]
-            g = np.random.default_rng(int(seeds[loc]))
-            w = _white(g, block.size, real).reshape(block.shape)
-            return w
-
-        white = da.map_blocks(block_noise, data, power, dtype=np.float64 if real else np.complex128)
-        scale = np.sqrt(power / 10 ** (snr_db / 10) * band / bandwidth_hz)
-        noisy = (data + (white * scale)).astype(data.dtype)
-        return _capture.like(cap, noisy)
-    x = np.asarray(data)
-    power = np.mean(np.abs(x) ** 2, axis=-1, keepdims=True)
-    if np.any(power == 0):
+        white = da.map_blocks(_white_block, data, seed, first, real,
+                              dtype=np.float64 if real else np.complex128)
+    else:
+        white = _white_block(np.asarray(data), seed, first, real)
+    power = (abs(data) ** 2).astype(np.float64).mean(axis=-1, keepdims=True)
+    if not lazy and np.any(power == 0):
         raise ValueError("add_noise: the capture has zero power; an SNR is undefined")
-    w = _white(gen, x.size, real).reshape(x.shape)
     if exact_power:
-        w = w / np.sqrt(np.mean(np.abs(w) ** 2, axis=-1, keepdims=True))
+        white = white / np.sqrt((abs(white) ** 2).mean(axis=-1, keepdims=True))
     noise_total = power / 10 ** (snr_db / 10) * band / bandwidth_hz
-    noisy = (x + w * np.sqrt(noise_total)).astype(x.dtype)
+    noisy = (data + white * np.sqrt(noise_total)).astype(data.dtype)
     return _capture.like(cap, noisy)
+
+
+#: Noise is drawn in blocks of this many samples, each from its own seed, so that the noise
+#: at a sample depends only on the seed, the channel and the sample's absolute index.
+_NOISE_BLOCK = 1 << 16
+
+
+def _white_block(x: np.ndarray, seed: int, first: int, real: bool,
+                 block_info: Any = None) -> np.ndarray:
+    """Unit-power white noise shaped like ``x`` (last axis time), keyed to absolute indices."""
+    start = first
+    if block_info is not None:  # inside dask: where this chunk sits in the capture
+        start = first + block_info[0]["array-location"][-1][0]
+    lead = x.shape[:-1]
+    n = x.shape[-1]
+    rows = int(np.prod(lead)) if lead else 1
+    out = np.empty((rows, n), dtype=np.float64 if real else np.complex128)
+    b0, b1 = start // _NOISE_BLOCK, (start + n - 1) // _NOISE_BLOCK if n else start // _NOISE_BLOCK
+    ch0 = 0
+    if block_info is not None and lead:
+        ch0 = block_info[0]["array-location"][0][0]
+    for r in range(rows):
+        pieces = []
+        for b in range(b0, b1 + 1):
+            g = np.random.default_rng([seed, ch0 + r, b])
+            pieces.append(_white(g, _NOISE_BLOCK, real))
+        joined = np.concatenate(pieces) if pieces else np.zeros(0)
+        off = start - b0 * _NOISE_BLOCK
+        out[r] = joined[off: off + n]
+    return out.reshape(x.shape)
