@@ -122,3 +122,11 @@ def test_errors_speak_the_command_line(tmp_path):
     (tmp_path / "afile").write_text("")
     r = run("demo", tmp_path / "afile")
     assert r.returncode == 2 and "not a folder" in r.stderr
+
+
+def test_lost_metadata_is_one_warning_line(tone_file, tmp_path):
+    r = run("convert", tone_file, tmp_path / "t.wav")
+    assert r.returncode == 0, r.stderr
+    lines = [ln for ln in r.stderr.splitlines() if ln.strip()]
+    assert lines == [ln for ln in lines if ln.startswith("quadkit: warning:")]
+    assert any("center_frequency" in ln for ln in lines)

@@ -253,3 +253,27 @@ def test_missing_folder_raises_capture_error(tmp_path, name):
     with pytest.raises(CaptureError, match=r"folder .*nope does not exist; create it") as info:
         qio.write(cap, tmp_path / "nope" / name)
     assert isinstance(info.value, FileNotFoundError)  # old handlers keep working
+
+
+def test_formats_without_metadata_say_what_they_leave_out(tmp_path):
+    import quadkit
+    from quadkit import io
+
+    cap = quadkit.capture(np.array([0.5, 0.25j, -0.5, 0], np.complex64), sample_rate=48000,
+                          center_frequency=145.8e6, description="bench")
+    for name, write in (("a.wav", io.write_wav), ("a.npy", io.write_npy)):
+        with pytest.warns(io.MetadataLossWarning, match="center_frequency.*description"):
+            write(cap, tmp_path / name)
+    with pytest.warns(io.MetadataLossWarning, match="center_frequency"):
+        io.write_raw(cap, tmp_path / "a.iq", dtype="ci16_le")
+    two = quadkit.capture(np.zeros((2, 4), np.complex64), sample_rate=48000)
+    with pytest.warns(io.MetadataLossWarning, match=r"iq=True"):
+        io.write_wav(two, tmp_path / "two.wav")
+    back = io.read_wav(tmp_path / "two.wav", iq=True)
+    assert back.sizes["channel"] == 2 and back.dtype == np.complex64
+    # SigMF keeps everything: no warning
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        io.write_sigmf(cap, tmp_path / "a.sigmf-meta")

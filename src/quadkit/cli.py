@@ -9,6 +9,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import warnings
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, NoReturn
@@ -254,7 +255,17 @@ def main(argv: Sequence[str] | None = None) -> int:
         args = parser.parse_args(argv)
         if getattr(args, "scheme", None) and getattr(args, "symbol_rate", None) is None:
             raise _UserError("--scheme needs --symbol-rate (in Hz)")
-        return int(args.func(args) or 0)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            status = int(args.func(args) or 0)
+        seen = set()
+        for w in caught:  # quadkit's own warnings, one line each, like the errors
+            text = str(w.message).strip().splitlines()[0] if str(w.message).strip() else ""
+            if "quadkit" in str(w.filename) and text and text not in seen and issubclass(
+                    w.category, (UserWarning, RuntimeWarning)):
+                seen.add(text)
+                print(f"quadkit: warning: {text}", file=sys.stderr)
+        return status
     except (_UserError, CaptureError, MeasurementError, ValueError, FileNotFoundError,
             FileExistsError, IsADirectoryError, PermissionError) as exc:
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__

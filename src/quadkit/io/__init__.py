@@ -38,6 +38,7 @@ import xarray as xr
 
 from .._errors import CaptureError
 from ._atomic import FileExistsCaptureError
+from ._common import MetadataLossWarning
 from ._datatypes import KNOWN_DATATYPES as DATATYPES
 from ._raw import read_npy, read_raw, write_npy, write_raw
 from ._sigmf import read_sigmf, write_sigmf
@@ -52,7 +53,7 @@ __all__ = [
     "read_netcdf", "write_netcdf",
     "read_zarr", "write_zarr",
     "read_npy", "write_npy",
-    "DATATYPES", "FileExistsCaptureError",
+    "DATATYPES", "FileExistsCaptureError", "MetadataLossWarning",
 ]
 
 _ACCESSOR = ("write", "write_sigmf", "write_raw", "write_wav", "write_netcdf", "write_zarr",

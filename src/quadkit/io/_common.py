@@ -169,3 +169,29 @@ def json_error(path: Any, exc: json.JSONDecodeError) -> CaptureError:
     return CaptureError(
         f"{path}: malformed metadata JSON at line {exc.lineno}, column {exc.colno}: {exc.msg}"
     )
+
+
+class MetadataLossWarning(UserWarning):
+    """A file format cannot hold some of the capture's metadata, which is left out."""
+
+
+_NOTABLE = ("center_frequency", "calibration_db", "start_time", "description", "hardware",
+            "annotations", "segments")
+
+
+def warn_metadata_loss(cap: xr.DataArray, path: Any, what: str, *,
+                       kept: tuple[str, ...] = ()) -> None:
+    """Warn once, naming the file and the attrs that ``what`` (a format) cannot store."""
+    lost = []
+    for key in _NOTABLE:
+        if key in kept:
+            continue
+        value = cap.attrs.get(key)
+        if value is None or value == [] or value == "" or (key == "center_frequency"
+                                                          and float(value) == 0.0):
+            continue
+        lost.append(key)
+    if lost:
+        warnings.warn(
+            f"{path}: {what} stores no {', '.join(lost)}; they are left out (write SigMF "
+            "to keep them)", MetadataLossWarning, stacklevel=3)

@@ -13,7 +13,7 @@ from .._capture import capture
 from .._checks import check_positive_int
 from .._errors import CaptureError
 from ._atomic import atomic_path
-from ._common import check_frequency, check_rate, encoded_blocks, existing_file
+from ._common import check_frequency, check_rate, encoded_blocks, existing_file, warn_metadata_loss
 from ._datatypes import parse_datatype
 from ._lazy import load_samples, whole_samples
 
@@ -142,6 +142,7 @@ def write_raw(
             f"{path}: datatype {fmt.name!r} is real but the capture is complex; use "
             f"'c{fmt.name[1:]}'"
         )
+    warn_metadata_loss(cap, path, "a raw file")
     with atomic_path(path, overwrite=overwrite) as tmp, open(tmp, "wb") as fh:
         for raw in encoded_blocks(cap, fmt, path):
             fh.write(raw)
@@ -239,6 +240,7 @@ def write_npy(cap: xr.DataArray, path: str | os.PathLike[str], *, overwrite: boo
     >>> np.load(path)
     array([0.+1.j, 2.+0.j], dtype=complex64)
     """
+    warn_metadata_loss(cap, path, ".npy", kept=())
     with atomic_path(path, overwrite=overwrite) as tmp, open(tmp, "wb") as fh:
         np.save(fh, np.asarray(cap.values), allow_pickle=False)
     return Path(path)

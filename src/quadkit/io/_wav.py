@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import os
 import struct
+import warnings
 from pathlib import Path
 from typing import Any, Literal
 
@@ -22,7 +23,14 @@ from .._capture import capture
 from .._checks import check_option
 from .._errors import CaptureError
 from ._atomic import atomic_path
-from ._common import apply_overrides, check_frequency, encoded_blocks, existing_file
+from ._common import (
+    MetadataLossWarning,
+    apply_overrides,
+    check_frequency,
+    encoded_blocks,
+    existing_file,
+    warn_metadata_loss,
+)
 from ._datatypes import parse_datatype
 from ._lazy import load_samples, whole_samples
 
@@ -194,6 +202,12 @@ def write_wav(
     header += b"fmt " + struct.pack("<IHHIIHH", 16, tag, n_ch, int(fs), int(fs) * block_align,
                                     block_align, bits)
     header += b"data" + struct.pack("<I", data_bytes)
+    warn_metadata_loss(cap, path, "WAV")
+    if complex_ and cap.sizes.get("channel", 1) > 1:
+        warnings.warn(
+            f"{path}: {cap.sizes['channel']} complex channels are stored as "
+            f"{n_ch} WAV channels (I, Q, I, Q, ...); read them back with read_wav(path, iq=True)",
+            MetadataLossWarning, stacklevel=2)
     with atomic_path(path, overwrite=overwrite) as tmp, open(tmp, "wb") as fh:
         fh.write(header)
         for raw in encoded_blocks(cap, fmt, path):
