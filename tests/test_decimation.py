@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from fractions import Fraction
 
 import dask.array as da
 import numpy as np
@@ -537,3 +538,60 @@ def test_design_response_curve_matches_freqz():
     # compared as amplitudes: dB would magnify rounding at the stopband nulls
     np.testing.assert_allclose(10 ** (g.values / 20), np.abs(h), rtol=1e-9, atol=1e-13)
     assert g.attrs["units"] == "dB" and g["frequency"].attrs["units"] == "Hz"
+
+
+# --------------------------------------------------------------------------------------------
+# Metadata carried through every operation (DESIGN: attrs carried forward, changed ones updated)
+# --------------------------------------------------------------------------------------------
+
+_ANN = [{"start_sample": 1000, "sample_count": 4000, "lower_frequency_hz": 1.0000e9,
+         "upper_frequency_hz": 1.0002e9, "label": "burst"}]
+_SEG = [{"start_sample": 0, "center_frequency": 1e9, "start_time": "2026-12-01T00:00:00Z"},
+        {"start_sample": 6000, "center_frequency": 1.001e9}]
+
+
+def _meta_cap(real=False):
+    x = noise(12000, seed=3)
+    x = x.real.copy() if real else x
+    return quadkit.capture(x, sample_rate=1e6, center_frequency=1e9, annotations=_ANN,
+                           segments=_SEG)
+
+
+# (name, call, real input, expected new rate, expected move of 0 Hz in Hz)
+_META_CASES = [
+    ("shift", lambda c: quadkit.mixing.shift(c, 2e5), False, 1e6, -2e5),
+    ("filter", lambda c: filter(c, [0.25, 0.5, 0.25]), False, 1e6, 0.0),
+    ("decimate", lambda c: decimate(c, 4), False, 2.5e5, 0.0),
+    ("resample", lambda c: resample(c, 1e6 * 5 / 12), False, 1e6 * 5 / 12, 0.0),
+    ("extract_channel", lambda c: extract_channel(c, 1e5, 2e4), False, 1e6 / 40, 1e5),
+    ("downconvert", lambda c: quadkit.mixing.downconvert(c, 2e5), True, 1e6, 2e5),
+    ("downconvert_rate", lambda c: quadkit.mixing.downconvert(
+        c, 2e5, bandwidth_hz=1e5, sample_rate=2e5), True, 2e5, 2e5),
+    ("downconvert_fraction", lambda c: quadkit.mixing.downconvert(
+        c, 2e5, bandwidth_hz=1e5, sample_rate=3e5), True, 3e5, 2e5),
+    ("upconvert", lambda c: quadkit.mixing.upconvert(c, 1e6, sample_rate=8e6), False, 8e6,
+     -1e6),
+]
+
+
+@pytest.mark.parametrize("name,call,real,rate,move", _META_CASES, ids=[c[0] for c in _META_CASES])
+def test_annotations_and_segments_follow_every_operation(name, call, real, rate, move):
+    cap = _meta_cap(real)
+    y = call(cap)
+    assert y.attrs["sample_rate"] == pytest.approx(rate, rel=1e-12)
+    # expected values from the definitions: sample indices scale by the rate ratio (rounded
+    # to the nearest sample), baseband 0 Hz moves by `move`, absolute annotation band edges
+    # and segment start times do not change
+    r = Fraction(rate) / Fraction(1e6)
+    scale = lambda n: int(math.floor(n * r + Fraction(1, 2)))  # noqa: E731
+    assert y.attrs["center_frequency"] == pytest.approx(1e9 + move, abs=1e-3)
+    want_ann = [{**a, "start_sample": scale(a["start_sample"]),
+                 "sample_count": scale(a["sample_count"])} for a in _ANN]
+    assert y.attrs["annotations"] == want_ann
+    got = y.attrs["segments"]
+    assert [s["start_sample"] for s in got] == [scale(s["start_sample"]) for s in _SEG]
+    # 1e-3 Hz: float64 sums of GHz values and offsets (rounding ~1e-7 Hz)
+    np.testing.assert_allclose([s["center_frequency"] for s in got],
+                               [s["center_frequency"] + move for s in _SEG], rtol=0, atol=1e-3)
+    assert got[0]["start_time"] == _SEG[0]["start_time"]
+    assert cap.attrs["segments"] == _SEG and cap.attrs["annotations"] == _ANN  # untouched

@@ -260,3 +260,18 @@ def test_segments_follow_the_center_frequency():
     y = shift(cap, 2e5)
     assert [s["center_frequency"] for s in y.attrs["segments"]] == [1e9 - 2e5, 1.001e9 - 2e5]
     assert cap.attrs["segments"][0]["center_frequency"] == 1e9  # input untouched
+
+
+def test_shift_refuses_offsets_beyond_half_the_rate():
+    # a shift by more than fs/2 folds the band onto itself: a 1 kHz tone shifted by 2 MHz at
+    # 1 MS/s lands at 2.001 MHz = 1 kHz modulo fs, so its stated absolute frequency would be
+    # off by 2 MHz (sampling theorem, common practice)
+    cap = quadkit.synth.tone(1e3, sample_rate=1e6, n_samples=64)
+    for bad in (2e6, -2e6, 500_000.5):
+        with pytest.raises(ValueError, match=r"shift: \|offset_hz\| <= sample_rate/2.*"
+                                             + f"offset_hz={bad!r}".replace(".", r"\.")):
+            shift(cap, bad)
+    # the edges +-fs/2 themselves are allowed: the tone keeps its absolute frequency
+    for edge in (5e5, -5e5):
+        y = shift(cap, edge)
+        assert y.attrs["center_frequency"] == -edge

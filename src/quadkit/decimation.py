@@ -50,7 +50,7 @@ import xarray as xr
 
 from . import _capture
 from ._checks import check_finite, check_positive, check_positive_int
-from .mixing import _nco, _recentred
+from .mixing import _carried, _nco
 
 __all__ = ["lowpass_taps", "LowpassDesign", "filter", "decimate", "resample", "extract_channel"]
 _ACCESSOR = ("filter", "decimate", "resample", "extract_channel")
@@ -445,9 +445,13 @@ def _out_dtype(x_dtype: np.dtype, stages: Sequence[_Stage]) -> np.dtype:
     return np.dtype(np.float64 if wide else np.float32)
 
 
-def _apply(cap: xr.DataArray, stages: Sequence[_Stage], sample_rate: float,
-           **attr_updates: Any) -> xr.DataArray:
-    """Run a stage chain over a capture (numpy or dask) and wrap the result."""
+def _apply(cap: xr.DataArray, stages: Sequence[_Stage], sample_rate: float, *,
+           delta_hz: float = 0.0) -> xr.DataArray:
+    """Run a stage chain over a capture (numpy or dask) and wrap the result.
+
+    The attrs are carried forward with sample indices re-scaled to the new rate and, for a
+    chain that moves baseband 0 Hz up by ``delta_hz`` (a channel mix), the centre frequencies
+    moved by it (:func:`quadkit.mixing._carried`)."""
     s = _capture.start_index(cap)
     n = cap.sizes["time"]
     data = cap.data
@@ -502,31 +506,9 @@ def _apply(cap: xr.DataArray, stages: Sequence[_Stage], sample_rate: float,
     un_start = int(min(n_out, max(0, k_lo - j0)))
     un_end = int(min(n_out - un_start, max(0, j1 - k_hi)))
     ratio = Fraction(math.prod(st.up for st in stages), math.prod(st.down for st in stages))
-    attr_updates.update(_reindexed(cap.attrs, ratio))
     return _capture.like(cap, out, start_index=j0, sample_rate=float(sample_rate),
-                         unsettled_start=un_start, unsettled_end=un_end, **attr_updates)
-
-
-def _reindexed(attrs: dict, ratio: Fraction) -> dict:
-    """Annotations and segments with sample indices converted to the new rate."""
-    out = {}
-    if ratio == 1:
-        return out
-    for key, fields in (("annotations", ("start_sample", "sample_count")),
-                        ("segments", ("start_sample",))):
-        items = attrs.get(key)
-        if not isinstance(items, (list, tuple)):
-            continue
-        new = []
-        for item in items:
-            item = dict(item) if isinstance(item, dict) else item
-            if isinstance(item, dict):
-                for f in fields:
-                    if isinstance(item.get(f), (int, np.integer)):
-                        item[f] = int(math.floor(item[f] * ratio + Fraction(1, 2)))
-            new.append(item)
-        out[key] = new
-    return out
+                         unsettled_start=un_start, unsettled_end=un_end,
+                         **_carried(cap.attrs, ratio=ratio, delta_hz=delta_hz))
 
 
 def _workers() -> int:
@@ -902,4 +884,4 @@ def extract_channel(
         )
     stages = _decim_chain(fs, factor, f_pass, f_stop, a, 0.01, mod_hz=f0,
                           func="extract_channel")
-    return _apply(cap, stages, new_rate, **_recentred(cap.attrs, f0))
+    return _apply(cap, stages, new_rate, delta_hz=f0)

@@ -19,6 +19,7 @@ set-up with attenuators and keep within the input power limits of the receiver.
 from __future__ import annotations
 
 import math
+from fractions import Fraction
 from typing import Any
 
 import numpy as np
@@ -71,6 +72,40 @@ def _recentred(attrs: dict, delta_hz: float) -> dict:
     return out
 
 
+def _reindexed(attrs: dict, ratio: Fraction) -> dict:
+    """Attr updates for a rate change by ``ratio`` (new / old): the sample indices of the
+    ``annotations`` and ``segments`` attrs, rounded to the nearest new sample."""
+    out: dict = {}
+    if ratio == 1:
+        return out
+    for key, fields in (("annotations", ("start_sample", "sample_count")),
+                        ("segments", ("start_sample",))):
+        items = attrs.get(key)
+        if not isinstance(items, (list, tuple)):
+            continue
+        new = []
+        for item in items:
+            item = dict(item) if isinstance(item, dict) else item
+            if isinstance(item, dict):
+                for f in fields:
+                    if isinstance(item.get(f), (int, np.integer)):
+                        item[f] = int(math.floor(item[f] * ratio + Fraction(1, 2)))
+            new.append(item)
+        out[key] = new
+    return out
+
+
+def _carried(attrs: dict, *, ratio: Fraction = Fraction(1), delta_hz: float = 0.0) -> dict:
+    """The attr updates of an operation that changes the rate by ``ratio`` (new / old) and
+    moves baseband 0 Hz up by ``delta_hz``: indices re-scaled first, then the centre
+    frequencies moved, each step reading the attrs the previous one left (the one path every
+    operation of :mod:`mixing` and :mod:`decimation` takes, so the updates compose)."""
+    out = _reindexed(attrs, Fraction(ratio))
+    if delta_hz:
+        out.update(_recentred({**attrs, **out}, float(delta_hz)))
+    return out
+
+
 def _shift_block(x: np.ndarray, *, ratio: float, start: int, out_dtype: np.dtype,
                  block_info: Any = None) -> np.ndarray:
     first = start
@@ -118,12 +153,20 @@ def shift(cap: xr.DataArray, offset_hz: float) -> xr.DataArray:
         Capture, dims ``(time,)`` or ``(channel, time)``, numpy or dask (lazy stays lazy,
         chunk by chunk, no overlap needed). A real capture becomes complex.
     offset_hz : float
-        Shift in Hz (any real value; content is periodic in the sample rate).
+        Shift in Hz, ``|offset_hz| <= sample_rate / 2``. A larger shift always folds part of
+        the band onto itself (the content is periodic in the sample rate), so the stated
+        absolute frequencies would be wrong: it is refused. To move a signal further, change
+        the rate first (:func:`upconvert`, :func:`quadkit.decimation.resample`).
 
     Returns
     -------
     xarray.DataArray
         complex64 for complex64 or float32 input, complex128 for 64-bit input.
+
+    Raises
+    ------
+    ValueError
+        If ``|offset_hz| > sample_rate / 2``.
 
     Examples
     --------
@@ -136,9 +179,17 @@ def shift(cap: xr.DataArray, offset_hz: float) -> xr.DataArray:
     """
     _check_cap("shift", cap)
     f = check_finite("shift", "offset_hz", offset_hz)
+    fs = _capture.sample_rate(cap)
+    if abs(f) > fs / 2:
+        raise ValueError(
+            f"shift: |offset_hz| <= sample_rate/2 = {fs / 2!r} Hz is required, got "
+            f"offset_hz={f!r}: a larger shift folds part of the band onto itself and the "
+            "absolute frequencies would be wrong; raise the rate first "
+            "(quadkit.mixing.upconvert or quadkit.decimation.resample)"
+        )
     out = _mix(cap, f)
     return _capture.like(cap, out, start_index=_capture.start_index(cap),
-                         **_recentred(cap.attrs, -f))
+                         **_carried(cap.attrs, delta_hz=-f))
 
 
 def downconvert(
@@ -224,7 +275,7 @@ def downconvert(
         raise ValueError(f"downconvert: sample_rate={target!r} is too low for bandwidth_hz={bw!r}")
     stages = _dec._decim_chain(fs, m, bw / 2, f_stop, a, 0.01, mod_hz=fc, func=func,
                                gain=2.0, stop_cap=image)
-    out = _dec._apply(real_cap, stages, rate, **_recentred(real_cap.attrs, fc))
+    out = _dec._apply(real_cap, stages, rate, delta_hz=fc)
     if not integer:
         out = _dec.resample(out, target, stopband_db=a)
     return out
@@ -295,5 +346,6 @@ def upconvert(
                                                                stopband_db))
     mixed = _mix(up, fc)
     real = mixed.real
+    # `up` already carries the attrs re-indexed to the new rate; move its centre frequencies
     return _capture.like(up, real, start_index=_capture.start_index(up),
-                         **_recentred(cap.attrs, -fc))
+                         **_carried(up.attrs, delta_hz=-fc))
