@@ -26,8 +26,11 @@ def test_quick_start_is_two_commands_and_ci_runs_the_test_one():
     assert (ROOT / demo).exists()
 
 
-def test_tour_runs():
-    (code,) = _blocks("python")
-    r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True,
-                       timeout=600)
-    assert r.returncode == 0, r.stderr[-2000:]
+def test_tour_and_pipeline_run():
+    blocks = _blocks("python")
+    assert len(blocks) == 2  # the tour, and the pipeline on a dask.distributed cluster
+    for code in blocks:
+        r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True,
+                           text=True, timeout=600)
+        assert r.returncode == 0, r.stderr[-2000:]
+    assert "bench_tone.sigmf-meta" in r.stdout  # the pipeline went through the demo files
