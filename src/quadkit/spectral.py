@@ -1334,19 +1334,31 @@ def tone_quality(
     with the DFT method on a Welch spectrum (mean of windowed periodograms, default
     4-term Blackman-Harris, whose side lobes lie 92 dB down):
 
-    - the fundamental is the strongest component away from DC (or the one at
-      ``fundamental_hz``); each component's power is the sum of its main-lobe bins minus
-      the noise under them, corrected for the share of the window's energy those bins hold;
+    - the fundamental is the strongest tone away from DC that :func:`find_peaks` lists (a
+      tone-shaped line 10 dB over the local floor), or the listed tone at ``fundamental_hz``;
+      modulated traffic or noise without such a line is refused. Each component's power is
+      the sum of its main-lobe bins minus the background under them (noise floor plus the
+      window leakage of the fundamental and of the spurs), corrected for the share of the
+      window's energy those bins hold;
     - harmonics 2 .. n_harmonics + 1 are taken at h f0 folded into the band (for a complex
       capture both +h f0 and -h f0, wrapped into [-fs/2, fs/2)); a harmonic that lands on
       the fundamental, DC or an earlier harmonic is not counted twice;
     - DC (the main lobe around 0 Hz) is excluded, as the four-parameter sine fit of the
       standard removes the offset; for a complex capture the image at -f0 (quadrature
       imbalance) is not a harmonic: it counts as a spur (SFDR) and as noise;
-    - noise: the mean density of all remaining bins times the whole band (fs for complex,
-      fs/2 for real), so excluded bins count at the noise level;
+    - noise (for SNR and SINAD): the mean density of all remaining bins, spurs included as
+      the standard counts them, times the whole band (fs for complex, fs/2 for real), so
+      excluded bins count at the noise level;
+    - noise floor (``noise_floor_dbfs_hz``, and the background under every component): the
+      same mean without the main lobes and leakage skirts of the spurs :func:`find_peaks`
+      lists, so a spur or an IQ image raises neither the floor nor hides the harmonics;
     - SNR = P1 / P_noise, SINAD = P1 / (P_noise + P_harmonics), THD = P_harmonics / P1,
-      SFDR = P1 / (largest other component: a harmonic or the strongest remaining spur);
+      SFDR = P1 / (largest other component: a harmonic or the strongest remaining spur,
+      whose frequency is interpolated as in :func:`find_peaks`);
+    - never -inf: when no harmonic stands above the background, ``thd_db`` is the
+      floor-limited value (the noise power in the harmonic bins over P1, an upper bound of
+      the THD) and ``thd_floor_limited`` is True; likewise a noiseless SFDR reads the noise
+      in one main lobe;
     - ENOB (``enob_bits``) in the standard's full-scale form log2(FSR / (sqrt(12) NAD_rms)),
       with FSR = 2 full_scale and NAD_rms the rms noise and distortion per rail (for a
       complex capture each of I and Q is a converter: NAD_rms^2 = P_nad / 2).
@@ -1369,13 +1381,16 @@ def tone_quality(
     xarray.Dataset
         ``snr_db``, ``sinad_db``, ``sfdr_dbc``, ``thd_db``, ``enob_bits``, ``enob_sinad_bits``,
         ``noise_floor_dbfs_hz``, ``fundamental_power_dbfs``, ``fundamental_frequency_hz``,
-        ``fundamental_offset_hz``, ``spur_frequency_hz`` (of the SFDR spur); a ``channel``
-        dim for multi-channel captures.
+        ``fundamental_offset_hz``, ``spur_frequency_hz`` (of the SFDR spur),
+        ``thd_floor_limited`` (bool, see above); a ``channel`` dim for multi-channel captures.
+        With ``n_harmonics=0`` there is no ``thd_db`` nor ``thd_floor_limited``.
 
     Raises
     ------
     MeasurementError
-        When no component stands above the noise.
+        When no tone stands above the noise (or none at ``fundamental_hz``: the message
+        names the strongest tone found), or when every harmonic folds onto the fundamental
+        or DC.
 
     Examples
     --------
@@ -1408,34 +1423,70 @@ def tone_quality(
     band = fs / 2 if onesided else fs
     sumw2 = _window_sums(window, nper)[1]
     results: dict[str, list[float]] = {k: [] for k in (
-        "snr", "sinad", "sfdr", "thd", "enob", "enob_sinad", "floor", "p1", "f1", "fspur")}
+        "snr", "sinad", "sfdr", "thd", "enob", "enob_sinad", "floor", "p1", "f1", "fspur",
+        "thd_limited")}
+    # Tones and spurs: find_peaks checks prominence over the local floor and tone shape.
+    peaks = find_peaks(spec)
+    channels = spec.channel.values if "channel" in spec.dims else [None]
+    if fundamental_hz is not None:
+        f_given = check_finite("tone_quality", "fundamental_hz", fundamental_hz)
     for c in range(lin.shape[0]):
         p = lin[c]
+        if channels[c] is None:
+            pk_off = np.asarray(peaks.offset_hz.values, float)
+            pk_pow = 10 ** (np.asarray(peaks.power_dbfs.values, float) / 10)
+        else:
+            sel = np.asarray(peaks.channel.values) == channels[c]
+            pk_off = np.asarray(peaks.offset_hz.values, float)[sel]
+            pk_pow = 10 ** (np.asarray(peaks.power_dbfs.values, float)[sel] / 10)
+        pk_pos = (pk_off - off[0]) / df
         used = np.zeros(nf, bool)
         k_dc, _ = _bin_of(0.0, off[0], df, nf, circular)
         dc_idx = np.arange(k_dc - L, k_dc + L + 1)
         dc_idx = dc_idx % nf if circular else dc_idx[(dc_idx >= 0) & (dc_idx < nf)]
         used[dc_idx] = True
+
+        def bin_dist(pos, ref):
+            d = np.asarray(pos, float) - ref
+            return (d + nf / 2) % nf - nf / 2 if circular else d
+
+        away = np.abs(bin_dist(pk_pos, k_dc)) > L
         if fundamental_hz is None:
-            masked = np.where(used, -np.inf, p)
-            k1 = int(np.argmax(masked))
-            delta1 = None
+            if not np.any(away):
+                raise MeasurementError(
+                    "tone_quality: no tone above the noise (no tone-shaped line stands 10 dB "
+                    "over the local floor away from DC); check the capture or give "
+                    "fundamental_hz")
+            j1 = int(np.flatnonzero(away)[0])  # strongest first
+            k1, delta1 = _bin_of(pk_off[j1], off[0], df, nf, circular)
         else:
-            f_off = check_finite("tone_quality", "fundamental_hz", fundamental_hz) - fc
-            k1, delta1 = _bin_of(_fold(f_off, fs, onesided), off[0], df, nf, circular)
+            f_off = _fold(f_given - fc, fs, onesided)
+            k1, delta1 = _bin_of(f_off, off[0], df, nf, circular)
+            there = np.abs(bin_dist(pk_pos, k1 + delta1)) <= L
+            if not np.any(there):
+                found = (f"the strongest tone found is at {fc + pk_off[0]:.6g} Hz "
+                         f"({10 * np.log10(pk_pow[0]):.1f} dBFS)" if pk_off.size
+                         else "no tone stands above the noise anywhere")
+                raise MeasurementError(
+                    f"tone_quality: no tone at fundamental_hz={fundamental_hz:.6g} Hz; {found}")
+            j1 = int(np.flatnonzero(there)[0])
         # First pass for a rough noise level under the components: the median of free bins.
         rough = float(np.median(p[~used])) / _floor_bias(spec)
         rough_floor = np.full(nf, rough)
         idx1, d1, frac1 = _component(p, rough_floor, k1, window, nper, circular, delta1)
         f1_off = off[k1] + d1 * df
+        if circular and f1_off >= fs / 2:
+            f1_off -= fs
         used[idx1] = True
         # Bins where the fundamental's leakage (window side lobes, from the closed-form
         # transform) exceeds 1 % of the noise are left out of the noise average.
         p1_rough = max(float((np.sum(p[idx1]) - rough * idx1.size) * df / frac1), 0.0)
-        dist = np.arange(nf) - (k1 + d1)
-        if circular:
-            dist = (dist + nf / 2) % nf - nf / 2
-        leak = p1_rough * np.abs(_window_dtft(window, nper, dist)) ** 2 / (fs * sumw2)
+
+        def leakage(power, pos):
+            dist = bin_dist(np.arange(nf), pos)
+            return power * np.abs(_window_dtft(window, nper, dist)) ** 2 / (fs * sumw2), dist
+
+        leak, dist = leakage(p1_rough, k1 + d1)
         # (Within an eighth of the band, so that a noiseless capture keeps noise bins.)
         skirt = (leak > 0.01 * rough) & (np.abs(dist) < nf / 8)
         leak[idx1] = 0.0
@@ -1451,41 +1502,76 @@ def tone_quality(
                 if idx.size == 0:
                     continue
                 used[idx] = True
-                harm.append((idx, frac))
+                harm.append((idx, frac, fh))
+        if n_harmonics and not harm:
+            raise MeasurementError(
+                f"tone_quality: every harmonic of {fc + f1_off:.6g} Hz folds onto the "
+                "fundamental or DC, so THD cannot be measured; move the tone or give "
+                "n_harmonics=0")
         free = ~used & ~skirt
         if not np.any(free):
             raise MeasurementError("tone_quality: no noise bins left; use a longer nperseg")
-        n0 = float(np.mean(p[free]))
+        # Spurs (found tones other than the fundamental, its harmonics and DC): their main
+        # lobes and leakage skirts are noise for SNR (IEEE Std 1241) but are kept out of the
+        # noise floor and of the background subtracted under each component.
+        spur_bins = np.zeros(nf, bool)
+        spur_leak = np.zeros(nf)
+        for j in range(pk_off.size):
+            kj = int(np.floor(pk_pos[j] + 0.5)) % nf if circular else int(
+                min(max(np.floor(pk_pos[j] + 0.5), 0), nf - 1))
+            if j == j1 or used[kj]:
+                continue
+            lj, dj = leakage(pk_pow[j], pk_pos[j])
+            lobe = np.abs(dj) <= L + 0.5
+            spur_bins |= ((lj > 0.01 * rough) & (np.abs(dj) < nf / 8)) | lobe
+            lj[lobe] = 0.0  # the spur itself is measured, only its leakage is background
+            spur_leak += lj
+        quiet = free & ~spur_bins
+        if np.count_nonzero(quiet) < max(16, np.count_nonzero(free) // 4):
+            quiet = free
+        n_snr = float(np.mean(p[free]))  # all that is not signal, DC or harmonic
+        n0 = float(np.mean(p[quiet]))  # the noise floor itself
         p1 = float((np.sum(p[idx1]) - n0 * idx1.size) * df / frac1)
         if not p1 > 10 * n0 * df * idx1.size:
             raise MeasurementError(
-                "tone_quality: no tone stands above the noise; check the capture or give "
-                "fundamental_hz"
-            )
-        # Background under a component: the noise plus the fundamental's leakage there.
-        back = n0 + leak * (p1 / p1_rough if p1_rough > 0 else 0.0)
-        ph = [max(float(np.sum(p[i] - back[i]) * df / fr), 0.0) for i, fr in harm]
-        p_harm = float(sum(ph))
-        p_noise = n0 * band
-        # Largest remaining spur (above its background): its main lobe summed like a component.
+                f"tone_quality: no tone above the noise (the line at {fc + f1_off:.6g} Hz holds "
+                "less than 10 times the noise in its main lobe); check the capture")
+        # Background under a component: the noise plus the fundamental's and spurs' leakage.
+        back = n0 + leak * (p1 / p1_rough if p1_rough > 0 else 0.0) + spur_leak
+        ph = [float(np.sum(p[i] - back[i]) * df / fr) for i, fr, _ in harm]
+        p_harm = float(sum(max(v, 0.0) for v in ph))
+        thd_limited = bool(harm) and not p_harm > 0
+        if thd_limited:
+            # No harmonic stands above the noise under it: report the noise power in the
+            # harmonic bins, an upper bound of the THD (the floor-limited value).
+            p_thd = float(sum(n0 * i.size * df / fr for i, fr, _ in harm))
+        else:
+            p_thd = p_harm
+        p_noise = n_snr * band
+        # Largest remaining spur (above its background): its main lobe summed like a component,
+        # its frequency interpolated as in find_peaks.
         rest = np.flatnonzero(~used)
         kmax = int(rest[np.argmax(p[rest] - back[rest])])
-        idx_s = np.arange(kmax - L, kmax + L + 1)
-        idx_s = idx_s % nf if circular else idx_s[(idx_s >= 0) & (idx_s < nf)]
+        idx_s, d_s, frac_s = _component(p, back, kmax, window, nper, circular)
         idx_s = idx_s[~used[idx_s]]
-        spur = max(float(np.sum(p[idx_s] - back[idx_s]) * df), 0.0)
-        f_spur = off[kmax]
+        spur = float(np.sum(p[idx_s] - back[idx_s]) * df / frac_s)
+        if not spur > 0:
+            spur = float(n0 * max(idx_s.size, 1) * df / frac_s)  # floor-limited
+        f_spur = off[kmax] + d_s * df
+        if circular and f_spur >= fs / 2:
+            f_spur -= fs
         if ph and max(ph) >= spur:
             j = int(np.argmax(ph))
             spur = ph[j]
-            i = harm[j][0]
-            f_spur = off[i[np.argmax(p[i])]]
+            f_spur = harm[j][2]
         p_nad = p_noise + p_harm
         rail_ms = p_nad if onesided else p_nad / 2
         results["snr"].append(10 * np.log10(p1 / p_noise))
         results["sinad"].append(10 * np.log10(p1 / p_nad))
-        results["sfdr"].append(10 * np.log10(p1 / spur) if spur > 0 else np.inf)
-        results["thd"].append(10 * np.log10(p_harm / p1) if p_harm > 0 else -np.inf)
+        results["sfdr"].append(10 * np.log10(p1 / spur))
+        # (p_thd is 0 only with n_harmonics=0, where thd_db is dropped)
+        results["thd"].append(10 * np.log10(p_thd / p1) if p_thd > 0 else 0.0)
+        results["thd_limited"].append(thd_limited)
         results["enob"].append(float(np.log2(2.0 / np.sqrt(12 * rail_ms))))
         results["floor"].append(10 * np.log10(n0))
         results["p1"].append(10 * np.log10(p1))
@@ -1511,6 +1597,13 @@ def tone_quality(
         "fundamental_offset_hz": _per_channel(spec, f1, "Hz", "fundamental baseband offset"),
         "spur_frequency_hz": _per_channel(spec, fc + np.asarray(results["fspur"]), "Hz",
                                           "frequency of the largest spur"),
+        "thd_floor_limited": quantity(
+            np.asarray(results["thd_limited"], bool) if "channel" in spec.dims
+            else bool(results["thd_limited"][0]), "1",
+            "thd_db is the floor-limited upper bound (no harmonic above the noise)",
+            ("channel",) if "channel" in spec.dims else ()),
     }
+    if n_harmonics == 0:
+        del out["thd_db"], out["thd_floor_limited"]
     return _channel_result(spec, out, {"n_harmonics": n_harmonics, "window": window,
                                        "nperseg": nper, "rbw_hz": float(attrs["rbw_hz"])})
