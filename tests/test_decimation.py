@@ -353,12 +353,83 @@ def test_resample_rates_tones_and_aliases(fs, new):
         assert np.abs(resid).max() <= 2e-4
 
 
-def test_resample_unreachable_ratio():
+def test_resample_taps_need_a_small_ratio():
     cap = quadkit.capture(noise(100), sample_rate=1e6)
-    with pytest.raises(ValueError, match="not reachable.*up, down <= 1000.*1e-09"):
-        resample(cap, 1e6 * math.pi / 3)
+    with pytest.raises(ValueError, match="not reachable.*up, down <= 1000.*1e-09.*taps="):
+        resample(cap, 1e6 * math.pi / 3, taps=ss.firwin(63, 0.3))
     with pytest.raises(ValueError, match="sample_rate=-1"):
         resample(cap, -1.0)
+
+
+# ratios that are no small fraction: a 1 ppm clock correction, pi/8 down, e/2 up
+FRACTIONAL = [999_999.0, 1e6 * math.pi / 8, 1e6 * math.e / 2]
+
+
+@pytest.mark.parametrize("new", FRACTIONAL)
+def test_resample_fractional_passband_flat_and_zero_delay(new):
+    fs, n = 1e6, 30_000
+    band = min(fs, new)
+    f = np.linspace(-0.4, 0.4, 9) * band  # the flat band |f| <= 0.8 * band / 2
+    x = tones(f, fs, n, phase=0.4)
+    y = resample(x, new)
+    assert y.attrs["sample_rate"] == new and y.dtype == np.complex64
+    # output sample j sits at j / new on the absolute axis (no delay)
+    np.testing.assert_allclose(y["time"].values[:3], np.arange(3) / new, rtol=0, atol=1e-15)
+    amp = tone_amplitudes(y, f) * np.exp(-0.4j)
+    gain_db = 20 * np.log10(np.abs(amp))
+    # spec: 0.01 dB peak to peak over the flat band
+    assert gain_db.max() - gain_db.min() <= 0.01 and np.abs(gain_db).max() <= 0.01
+    # zero delay: a timing error tau would turn the phase by 2 pi f tau (3e-4 rad ~ 0.1 ns at
+    # 400 kHz); the linear-phase prototype has none, spurs 80 dB down move it by <= 1e-4 rad
+    assert np.abs(np.angle(amp)).max() <= 3e-4
+    # against the analytic tone at the new rate: 0.01 dB is 1.2e-3 of amplitude, plus spurs
+    s = settled(y)
+    ref = np.exp(1j * (2 * np.pi * f[:, None] * s["time"].values + 0.4))
+    assert np.abs(s.values - ref).max() <= 1.3e-3
+
+
+@pytest.mark.parametrize("new", FRACTIONAL)
+def test_resample_fractional_alias_and_image_rejection(new):
+    fs, n = 1e6, 30_000
+    band = min(fs, new)
+    # tones the filter must remove: above band / 2 (they would alias), one per channel
+    stop = np.array([0.5, 0.6, 0.8, 0.99]) * fs / 2
+    stop = np.concatenate([stop[stop >= band / 2 * 1.0001], -stop[stop >= band / 2 * 1.0001]])
+    if stop.size:
+        y = settled(resample(tones(stop, fs, n), new))
+        rms = np.sqrt(np.mean(np.abs(np.asarray(y.values, complex)) ** 2, axis=-1))
+        # at least 80 dB down (spec); the interpolation images, 10 dB lower still, may add to
+        # the alias: -80 and -90 dB sum to -79.6 dB
+        assert 20 * np.log10(rms.max()) <= -79.5
+    # tones in the flat band: what is left after removing the tone itself (images of the
+    # input at f +- k fs and of the phase interpolation, aliased to the new rate) is 80 dB down
+    f = np.array([0.3, -0.38, 0.01]) * band
+    y = resample(tones(f, fs, n), new)
+    amp = tone_amplitudes(y, f)
+    s = settled(y)
+    resid = np.asarray(s.values, complex) - amp[:, None] * np.exp(
+        2j * np.pi * f[:, None] * s["time"].values)
+    rms = np.sqrt(np.mean(np.abs(resid) ** 2, axis=-1))
+    assert 20 * np.log10(rms.max()) <= -79.5  # as above
+
+
+def test_resample_fractional_slices_channels_and_dtypes():
+    fs, new = 1e6, 999_999.0
+    x = noise(20_000, channels=2, seed=5)
+    cap = quadkit.capture(x, sample_rate=fs)
+    y = resample(cap, new)
+    # multi-channel equals per channel
+    np.testing.assert_array_equal(y.values[1], resample(cap.isel(channel=1), new).values)
+    # a slice, then resampling, gives the same samples at the same times (settled part)
+    part = resample(cap.isel(time=slice(3000, 15000)), new)
+    ps = settled(part)
+    k0 = int(round(ps["time"].values[0] * new))
+    np.testing.assert_allclose(ps["time"].values, y["time"].values[k0:k0 + ps.sizes["time"]],
+                               rtol=0, atol=1e-12)
+    np.testing.assert_allclose(ps.values, y.values[:, k0:k0 + ps.sizes["time"]], atol=1e-6)
+    # dtype kept: float32 stays real float32, complex128 stays complex128
+    assert resample(quadkit.capture(x.real.copy(), sample_rate=fs), new).dtype == np.float32
+    assert resample(cap.astype(np.complex128), new).dtype == np.complex128
 
 
 # --------------------------------------------------------------------------------------------
@@ -440,6 +511,7 @@ OPERATIONS = {
     "decimate7": lambda c: decimate(c, 7),
     "decimate120": lambda c: decimate(c, 120),
     "resample": lambda c: resample(c, c.attrs["sample_rate"] * 5 / 12),
+    "resample_clock": lambda c: resample(c, c.attrs["sample_rate"] - 1.0),  # fractional
     "extract": lambda c: extract_channel(c, -130e3, 30e3),
 }
 
@@ -563,6 +635,8 @@ _META_CASES = [
     ("filter", lambda c: filter(c, [0.25, 0.5, 0.25]), False, 1e6, 0.0),
     ("decimate", lambda c: decimate(c, 4), False, 2.5e5, 0.0),
     ("resample", lambda c: resample(c, 1e6 * 5 / 12), False, 1e6 * 5 / 12, 0.0),
+    ("resample_fractional", lambda c: resample(c, 1e6 * math.pi / 3), False, 1e6 * math.pi / 3,
+     0.0),
     ("extract_channel", lambda c: extract_channel(c, 1e5, 2e4), False, 1e6 / 40, 1e5),
     ("downconvert", lambda c: quadkit.mixing.downconvert(c, 2e5), True, 1e6, 2e5),
     ("downconvert_rate", lambda c: quadkit.mixing.downconvert(
