@@ -35,7 +35,10 @@ Every measurement is a short sequence of passes over the capture, each a sum ove
 nothing is computed until you ask):
 
 1. an averaged (Welch-like, periodic Hann) spectrum of segments of ``L1`` samples finds the
-   strongest line to a fraction of ``fs / L1``;
+   strongest line to a fraction of ``fs / L1``, and tests that it is a tone: above the
+   median of its neighbourhood by a threshold set for the number of averages (false-alarm
+   probability 1e-4 over the bins searched) and falling by more than 6 dB 3-4 bins from its
+   peak (a modulated carrier is flat-topped there);
 2. the capture is mixed down by that coarse frequency and summed over segments of
    ``L2 = L1 / 4`` samples; the segment sums of a tone form an exact tone of its own, whose
    zero-padded FFT peak gives the frequency to a small fraction of ``fs / N``;
@@ -54,6 +57,7 @@ from __future__ import annotations
 
 import math
 import operator
+from functools import lru_cache
 from typing import Any, Literal
 
 import numpy as np
@@ -95,6 +99,13 @@ _MAX_SEGMENTS = 1 << 15
 _ITERATIONS = 2
 #: False-alarm probability of the "is there a tone at all" test.
 _PFA = 1e-4
+#: Local-floor test of a line: half-width (bins) of the neighbourhood whose median is the
+#: floor, main-lobe half-width excluded from it (periodic Hann: the lobe spans +-2 bins, +-2.5
+#: for a tone between bins), and the bins past the lobe where a tone has fallen by 6 dB.
+_FLOOR_HALF = 32
+_LOBE = 3
+_SHAPE_BINS = (3, 4)
+_SHAPE_DB = 6.0
 _MIN_SAMPLES_SEARCH = 16
 _MIN_SAMPLES_FIXED = 4
 #: Hilbert FIR of the streaming analytic signal: half length and Kaiser beta.
@@ -332,9 +343,98 @@ def _sizes(n: int) -> tuple[int, int, int]:
     return l1, l2, n // l2
 
 
+@lru_cache(maxsize=64)
+def _floor_threshold(nseg: int, nfloor: int, looks: int, pfa: float) -> float:
+    """Peak-over-median ratio that white noise exceeds with probability ``pfa``.
+
+    With ``nseg`` averaged Hann segments a noise bin of the averaged spectrum is
+    ``S Gamma(nseg, 1)`` (chi-square with ``2 nseg`` degrees of freedom / 2; Kay, Modern
+    Spectral Estimation, memory). The floor is the median of ``nfloor`` neighbouring bins;
+    adjacent periodic-Hann bins are correlated (power correlation 4/9), so the median is
+    taken as that of ``nfloor // 2`` independent ones: the order statistic
+    ``U ~ Beta(a, a)``, ``a = (m + 1) / 2``, of uniforms mapped through the Gamma quantile
+    (David & Nagaraja, Order Statistics, memory). Then
+    ``P(peak > T floor) = E_U[sf(T ppf(U))]`` per bin, and the peak is the largest of
+    ``looks`` bins (Bonferroni: ``looks P <= pfa``).
+    """
+    from scipy import optimize, special, stats
+
+    a = (max(1, nfloor // 2) + 1) / 2.0
+    # the median's density on a log grid spanning its quantiles 1e-15 .. 1 - 1e-15
+    lo, hi = (special.gammaincinv(nseg, special.betaincinv(a, a, q)) for q in (1e-15, 1 - 1e-15))
+    z = np.linspace(math.log(lo), math.log(hi), 4001)
+    m = np.exp(z)
+    dens = stats.beta.pdf(special.gammainc(nseg, m), a, a) * stats.gamma.pdf(m, nseg) * m
+    weights = dens * (z[1] - z[0])
+    weights /= weights.sum()
+    log_target = math.log(pfa / looks)
+
+    def log_excess(log_t: float) -> float:
+        val = float(weights @ special.gammaincc(nseg, math.exp(log_t) * m))
+        return math.log(max(val, 1e-300)) - log_target
+
+    return math.exp(optimize.brentq(log_excess, 0.0, math.log(1e8), xtol=1e-5))
+
+
+def _line_test(row: np.ndarray, k: int, real: bool, looks: int, nseg: int, fs: float, ch: int,
+               func: str, note: str = "", what: str = "the strongest line") -> None:
+    """Raise MeasurementError unless bin ``k`` of the averaged spectrum ``row`` holds a tone.
+
+    A tone (a) stands above the *local* floor, the median of the bins within
+    ``_FLOOR_HALF`` bins of it outside its main lobe, by the ratio that noise alone exceeds
+    with probability ``_PFA`` (:func:`_floor_threshold`); and (b) is line-shaped: 3 and 4
+    bins from its peak (past the Hann main lobe) the spectrum is down by more than 6 dB on
+    both sides, where a modulated or wideband signal is flat-topped. Both parts are skipped
+    where the capture is too short to have the bins they need.
+    """
+    length = row.size
+    row = np.asarray(row, np.float64)
+    if real:  # one-sided: bins 0 .. L/2; DC and Nyquist (and their leakage) are no floor
+        idx = np.arange(length // 2 + 1)
+        vals = row[:length // 2 + 1]
+        d = idx - k
+        inner = (idx > 1) & (idx < length // 2 - 1)
+    else:
+        idx = np.arange(length)
+        vals = row
+        d = (idx - k + length // 2) % length - length // 2
+        inner = np.ones(length, bool)
+    peak = float(row[k])
+    off = (k / length if k < length / 2 or real else k / length - 1.0) * fs
+    near = inner & (np.abs(d) > _LOBE) & (np.abs(d) <= _FLOOR_HALF)
+    nfloor = int(near.sum())
+    if nfloor >= 4:
+        floor = float(np.median(vals[near]))
+        need = _floor_threshold(max(1, nseg), nfloor, max(1, looks), _PFA)
+        got = peak / floor if floor > 0 else (math.inf if peak > 0 else 0.0)
+        if not got >= need:
+            raise MeasurementError(
+                f"{func}: no tone above the noise (channel {ch}): {what}, at {off:.6g} Hz "
+                f"offset, stands {10 * math.log10(max(got, 1e-30)):.1f} dB above the local "
+                f"spectral floor (median of {nfloor} bins of {fs / length:.6g} Hz within "
+                f"+-{_FLOOR_HALF} bins, {nseg} average(s)); at least "
+                f"{10 * math.log10(need):.1f} dB is needed (false-alarm probability {_PFA:g})"
+                + note)
+    shape = inner & np.isin(np.abs(d), _SHAPE_BINS)
+    if shape.any() and peak > 0:
+        drop = 10 * math.log10(peak / max(float(vals[shape].max()), 1e-300))
+        if not drop > _SHAPE_DB:
+            raise MeasurementError(
+                f"{func}: no tone (channel {ch}): {what}, at {off:.6g} Hz offset, is not "
+                f"tone-shaped: {_SHAPE_BINS[0]}-{_SHAPE_BINS[-1]} bins of {fs / length:.6g} "
+                f"Hz from its peak the spectrum is only {drop:.1f} dB below it, where a tone "
+                f"falls by more than {_SHAPE_DB:g} dB; a flat top like this is a modulated or "
+                "wideband signal (give frequency_hz for a lock-in measurement at a known "
+                "frequency)")
+
+
 def _coarse(spec: np.ndarray, real: bool, hint: np.ndarray | None, window_bins: float,
-            func: str) -> np.ndarray:
-    """Peak of the averaged spectrum (per channel), log-parabolic interpolation; cycles/sample."""
+            func: str, nseg: int = 1, fs: float = 1.0, note: str = "") -> np.ndarray:
+    """Peak of the averaged spectrum (per channel), log-parabolic interpolation; cycles/sample.
+
+    The peak must pass :func:`_line_test` (a line above the local floor, tone-shaped) or a
+    MeasurementError says what was found.
+    """
     nchan, length = spec.shape
     freqs = np.fft.fftfreq(length)
     out = np.empty(nchan)
@@ -356,6 +456,7 @@ def _coarse(spec: np.ndarray, real: bool, hint: np.ndarray | None, window_bins: 
                 "segment); give more samples or a frequency inside the band")
         p[~allowed] = -1.0
         k = int(np.argmax(p))
+        _line_test(spec[ch], k, real, int(allowed.sum()), nseg, fs, ch, func, note)
         a, b0, c = (max(spec[ch][(k + d) % length], 1e-300) for d in (-1, 0, 1))
         la, lb, lc = np.log(a), np.log(b0), np.log(c)
         den = la - 2 * lb + lc
@@ -496,7 +597,7 @@ def _common(amp, phase_c, phase0, ratio, resid, noise, power, n, fs, check, inte
 
 
 def _search(data: Any, lazy: bool, n: int, real: bool, hint: np.ndarray | None,
-            func: str) -> Any:
+            func: str, fs: float = 1.0) -> Any:
     """Coarse (Welch) and fine (segment) stages: ratio estimate per channel (maybe Delayed)."""
     l1, l2, k = _sizes(n)
     centre = (n - 1) / 2.0
@@ -506,7 +607,12 @@ def _search(data: Any, lazy: bool, n: int, real: bool, hint: np.ndarray | None,
         aligned = max(l1, int(round(max(sizes) / l1)) * l1)
         welch_data = data.rechunk({1: aligned})
     spec = _pass(welch_data, lazy, _Welch, l1)
-    coarse = _step(lazy, _coarse, spec, real, hint, 3.0, func)
+    note = ""
+    if real and hint is None:
+        note = (f"; a real capture is searched between {2 * fs / l1:.6g} Hz and "
+                f"{fs / 2 - fs / l1:.6g} Hz offset only (clear of DC and Nyquist): give "
+                "frequency_hz for a tone outside that range")
+    coarse = _step(lazy, _coarse, spec, real, hint, 3.0, func, n // l1, fs, note)
     segs = _pass(data, lazy, _Segments, coarse, l2, k, centre)
     return _step(lazy, _fine, segs, coarse, l2)
 
@@ -545,7 +651,7 @@ def _estimate(cap: xr.DataArray, frequency_hz: float | None, refine: bool, func:
     if hint is not None and not refine:
         ratio = hint
     else:
-        ratio = _search(data, lazy, n, real, hint, func)
+        ratio = _search(data, lazy, n, real, hint, func, fs)
         ratio = _refine(data, lazy, ratio, n, real)
     check = frequency_hz is None or refine  # a lock-in measurement needs no tone test
     if real:
@@ -675,9 +781,14 @@ def measure_tone(cap: xr.DataArray, frequency_hz: float | None = None, *,
         Fewer than 16 samples (4 with ``refine=False``), or no tone above the noise: the
         normalised periodogram peak ``N A^2 / sigma^2`` (complex; ``N A^2 / (4 sigma^2)``
         real) must exceed ``ln N + ln(1/1e-4)``, the level the largest of N noise-only bins
-        exceeds with probability about 1e-4. Not tested with ``refine=False`` (a lock-in
-        measurement of whatever is at ``frequency_hz``). For a lazy capture the error is
-        raised when the result is computed.
+        exceeds with probability about 1e-4; and the line must stand above the *local*
+        floor of the averaged search spectrum (median of the bins 4 to 32 bins from it, the
+        threshold set for the number of averages and of bins searched so that white noise
+        passes with probability at most 1e-4) and be tone-shaped (3-4 bins from its peak
+        the spectrum is more than 6 dB down), so that modulated traffic, band-limited or
+        white noise give no "tone". Not tested with ``refine=False`` (a lock-in measurement
+        of whatever is at ``frequency_hz``). For a lazy capture the error is raised when the
+        result is computed.
     ValueError
         ``frequency_hz`` outside the band (complex: [fc - fs/2, fc + fs/2); real: strictly
         between fc and fc + fs/2).
@@ -698,9 +809,9 @@ def measure_tone(cap: xr.DataArray, frequency_hz: float | None = None, *,
     ...                          amplitude=0.5, phase_rad=2.5, center_frequency=915e6)
     >>> cap = quadkit.synth.add_noise(cap, snr_db=20, rng=1)
     >>> res = quadkit.recovery.measure_tone(cap)
-    >>> print(f"{float(res.offset_hz):.2f} Hz  A={float(res.amplitude):.4f}  "
+    >>> print(f"{float(res.offset_hz):.2f} Hz  A={float(res.amplitude):.3f}  "
     ...       f"phase={float(res.phase_rad):.3f} rad  SNR={float(res.snr_db):.1f} dB")
-    12345.68 Hz  A=0.5000  phase=2.500 rad  SNR=20.0 dB
+    12345.68 Hz  A=0.500  phase=2.500 rad  SNR=20.0 dB
     """
     res, meta = _estimate(cap, frequency_hz, bool(refine), "measure_tone")
     attrs = {"sample_rate": meta["fs"], "center_frequency": meta["fc"],
@@ -721,6 +832,13 @@ def sine_fit(cap: xr.DataArray, frequency_hz: float | None = None) -> xr.Dataset
         Known absolute frequency: the three-parameter fit (amplitude, phase, offset) is made at
         exactly this frequency. ``None``: the four-parameter fit estimates the frequency too
         (started from the search of :func:`measure_tone`, then Gauss-Newton iterations).
+
+    Raises
+    ------
+    MeasurementError
+        Without ``frequency_hz``: no tone in the capture, by the local-floor and shape test
+        of :func:`measure_tone` (modulated traffic or noise is not fitted as a sine). With
+        ``frequency_hz`` the fit is always made there. Also too few samples.
 
     Returns
     -------
@@ -765,7 +883,7 @@ def sine_fit(cap: xr.DataArray, frequency_hz: float | None = None) -> xr.Dataset
         raise MeasurementError(f"{func}: the capture has {n} samples; at least {need} are "
                                "needed for this fit")
     if frequency_hz is None:
-        ratio = _search(data, lazy, n, real, None, func)
+        ratio = _search(data, lazy, n, real, None, func, fs)
         ratio = _refine(data, lazy, ratio, n, real)
         if not real:  # the periodogram maximum ignores the offset: polish with it
             centre = (n - 1) / 2.0
@@ -1028,8 +1146,24 @@ def _fold(ratio: float) -> float:
     return ((ratio + 0.5) % 1.0) - 0.5
 
 
+def _check_fundamental(spec: np.ndarray, ratio: float, real: bool, nseg: int, fs: float,
+                       func: str) -> bool:
+    """Raise unless the averaged spectrum holds a tone at ``ratio`` (the largest of the three
+    bins nearest it, tested by :func:`_line_test`) in every channel."""
+    length = spec.shape[-1]
+    centre = int(round(ratio * length))
+    cand = [(centre + d) % length for d in (-1, 0, 1)]
+    if real:
+        cand = [b for b in cand if 0 < b < length // 2] or [centre % length]
+    for ch in range(spec.shape[0]):
+        k = max(cand, key=lambda b: spec[ch][b])
+        _line_test(spec[ch], k, real, len(cand), nseg, fs, ch, func,
+                   what=f"the fundamental {ratio * fs:.6g} Hz offset")
+    return True
+
+
 def _finish_harmonics(gram: np.ndarray, nh: int, real: bool, full_scale: float,
-                      func: str) -> dict:
+                      func: str, present: bool = True) -> dict:
     coef, dc, resid = _solve_fixed(gram, nh, real, func)
     amp = np.abs(coef) / full_scale  # units of full scale
     if np.any(amp[:, 0] <= 0):
@@ -1079,6 +1213,14 @@ def harmonics(cap: xr.DataArray, fundamental_hz: float, n: int = 10) -> xr.Datas
         (where measured, folded); per channel ``thd_percent`` and ``thd_db``
         (``sqrt(sum_{h>=2} A_h^2) / A_1``).
 
+    Raises
+    ------
+    MeasurementError
+        The fundamental is not there as a tone: in an averaged spectrum the largest of the
+        three bins nearest ``fundamental_hz`` must stand above the local floor (the test of
+        :func:`measure_tone`, here for 3 bins looked at) and be tone-shaped. Also harmonics
+        that fold onto DC, Nyquist or each other, and too few samples.
+
     Examples
     --------
     >>> import numpy as np, quadkit
@@ -1114,8 +1256,21 @@ def harmonics(cap: xr.DataArray, fundamental_hz: float, n: int = 10) -> xr.Datas
         raise MeasurementError(f"{func}: the capture has {meta['n']} samples; {n} harmonics "
                                f"need at least {need}")
     ratio = np.full(meta["nchan"], off / fs)
+    # the fundamental must be there as a tone: local-floor and shape test at its bin of an
+    # averaged spectrum whose segment puts it at least 6 bins from DC / Nyquist (real)
+    l1 = _sizes(meta["n"])[0]
+    while (real and min(abs(off) / fs, 0.5 - abs(off) / fs) * l1 < 6
+           and 2 * l1 <= meta["n"]):
+        l1 *= 2
+    welch_data = data
+    if lazy:
+        aligned = max(l1, int(round(max(data.chunks[1]) / l1)) * l1)
+        welch_data = data.rechunk({1: aligned})
+    spec = _pass(welch_data, lazy, _Welch, l1)
+    present = _step(lazy, _check_fundamental, spec, off / fs, real, meta["n"] // l1, fs, func)
     gram = _pass(data, lazy, _FixedFit, ratio, tuple(range(1, n + 1)), real)
-    res = _step(lazy, _finish_harmonics, gram, n, real, _capture.full_scale(cap), func)
+    res = _step(lazy, _finish_harmonics, gram, n, real, _capture.full_scale(cap), func,
+                present)
     shape = (meta["nchan"], n)
     fields = {key: _field_nd(res, key, meta, shape)
               for key in ("amplitude", "phase0", "power_dbfs", "level_dbc")}
