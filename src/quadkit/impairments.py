@@ -485,8 +485,14 @@ def apply(
     sample_rate_offset_ppm : float
         Sample-clock error in parts per million.
     quantize_bits : int, optional
+        Quantise I and Q each with an ideal ``quantize_bits``-bit mid-tread converter over
+        +-full_scale: round to the step ``full_scale / 2**(bits - 1)`` and saturate at codes
+        ``-2**(bits-1) .. 2**(bits-1) - 1`` (so +full_scale itself reads one step lower).
+        Runs after clipping. At least 2 bits.
     clip_level : float, optional
-        Fraction of full scale.
+        Clip level as a fraction of full scale. I and Q are clipped separately, each to
+        ``+-clip_level * full_scale`` (a square limiter, as two converters saturate; the
+        magnitude of a sample can reach ``sqrt(2) * clip_level * full_scale``).
     branch_filters : (array_like, array_like), optional
         Real FIR taps of the I and the Q branch.
     rng : int or numpy.random.Generator, optional
@@ -496,6 +502,12 @@ def apply(
     -------
     capture
         Same dims, dtype and attrs.
+
+    Raises
+    ------
+    ValueError
+        For a real-valued capture (the impairments act on the I and Q rails; there is no
+        real-capture subset) and for invalid arguments.
 
     Examples
     --------
@@ -508,7 +520,13 @@ def apply(
     np.complex64(1.5-1j)
     """
     func = "apply"
-    _check_complex(func, cap)
+    if not isinstance(cap, xr.DataArray):
+        raise ValueError(f"{func}: expected a capture (xarray.DataArray), got {type(cap).__name__}")
+    if not _capture.is_complex(cap):
+        # An argument error, not a failed measurement: the model acts on the I and Q rails.
+        raise ValueError(
+            f"{func}: cap must be a complex (IQ) capture, got real samples; bring it to "
+            "baseband with quadkit.mixing.downconvert first")
     fs = _capture.sample_rate(cap)
     g_db = check_finite(func, "gain_imbalance_db", gain_imbalance_db)
     phi_deg = check_finite(func, "phase_skew_deg", phase_skew_deg)
@@ -1375,6 +1393,51 @@ def _line_frequency(x2, *, near: np.ndarray | None = None, width: np.ndarray | N
     return fine, se
 
 
+#: A carrier holds at least this share of the power within fs / 20 of it.
+_CARRIER_SHARE = 0.5
+
+
+def _require_tone(func: str, cap: xr.DataArray, x2: Any, ratios: np.ndarray, what: str,
+                  advice: str) -> None:
+    """Refuse a capture without a carrier at ``ratios`` (cycles/sample, per channel).
+
+    A carrier is a line that :func:`quadkit.spectral.find_peaks` lists (10 dB over the local
+    floor and shaped like a tone) within 3 bins of the line found, holding at least half of
+    the power within fs / 20 of it, in a Hann spectrum (1024-point segments at most) of the
+    first 2**18 samples. RRC-shaped traffic has no such line: its power is spread over the
+    symbol rate.
+    """
+    from . import spectral
+
+    fs = _capture.sample_rate(cap)
+    head = _head(x2, min(x2.shape[-1], 1 << 18))
+    nper = 1024
+    while nper > 64 and 4 * nper > head.shape[1]:
+        nper //= 2
+    attrs = {"sample_rate": fs, "center_frequency": 0.0, "full_scale": _capture.full_scale(cap)}
+    spec = spectral.psd(_capture.from_array(head, attrs), nperseg=nper)
+    peaks = spectral.find_peaks(spec)
+    lin = 10 ** (np.atleast_2d(np.asarray(spec.values, dtype=float)) / 10)
+    off = np.asarray(spec.offset.values, dtype=float)
+    df = fs / nper
+    pk_ch = np.asarray(peaks.channel.values)
+    pk_off = np.asarray(peaks.offset_hz.values, dtype=float)
+    pk_pow = 10 ** (np.asarray(peaks.power_dbfs.values, dtype=float) / 10)
+
+    def wrap(d: np.ndarray) -> np.ndarray:
+        return (d + fs / 2) % fs - fs / 2
+
+    for c in range(lin.shape[0]):
+        f = float(ratios[c]) * fs
+        near = float(np.sum(lin[c][np.abs(wrap(off - f)) <= fs / 20]) * df)
+        mine = (pk_ch == c) & (np.abs(wrap(pk_off - f)) <= 3 * df)
+        if not np.any(mine & (pk_pow >= _CARRIER_SHARE * near)):
+            where = f" (channel {cap.channel.values[c]})" if "channel" in cap.dims else ""
+            raise MeasurementError(
+                f"{func}: no {what} in the capture{where}: the strongest line, at offset "
+                f"{f:.6g} Hz, is not a tone holding most of the power near it; {advice}")
+
+
 _POWER = {"tone": 1, "cw": 1, "bpsk": 2, "pi/2-bpsk": 4, "qpsk": 4, "8psk": 8, "psk8": 8,
           "16qam": 4, "qam16": 4, "64qam": 4, "qam64": 4, "256qam": 4, "qam256": 4}
 
@@ -1412,6 +1475,14 @@ def frequency_offset(
         ``offset_hz`` (measured baseband offset) and ``frequency_hz`` (absolute); attr
         ``method``.
 
+    Raises
+    ------
+    MeasurementError
+        With ``modulation=None`` (or "tone") when the capture holds no tone: the strongest
+        line must be listed by :func:`quadkit.spectral.find_peaks` and hold at least half
+        of the power within fs / 20 of it. Modulated traffic has no such line; give its
+        ``modulation`` instead.
+
     Examples
     --------
     >>> import quadkit
@@ -1431,6 +1502,10 @@ def frequency_offset(
     if power > 1:
         x2 = (x2.astype(np.complex128) / _capture.full_scale(cap)) ** power
     ratio, se = _line_frequency(x2)
+    if power == 1:
+        _require_tone(func, cap, x2, ratio, "tone",
+                      'for modulated traffic give modulation="qpsk", "16qam", "bpsk", ... '
+                      "(the M-th power line)")
     offset = ratio * fs / power
     fc = float(cap.attrs.get("center_frequency", 0.0))
     variables = {
@@ -1618,6 +1693,14 @@ def phase_noise(
         width to integrate the curve with), ``nperseg``, ``n_segments``,
         ``integration_start_hz``, ``integration_stop_hz``.
 
+    Raises
+    ------
+    MeasurementError
+        When there is no carrier (at ``carrier_hz`` or anywhere): the line must be listed by
+        :func:`quadkit.spectral.find_peaks` (a tone-shaped line 10 dB over the local floor)
+        and hold at least half of the power within fs / 20 of it, which modulated traffic
+        does not; also for too short captures or offsets outside the measurable range.
+
     Examples
     --------
     >>> import numpy as np, quadkit
@@ -1652,6 +1735,8 @@ def phase_noise(
             raise ValueError(f"{func}: carrier_hz={carrier_hz} lies outside the captured band")
         ratios, _ = _line_frequency(x2, near=np.full(n_ch, off / fs),
                                     width=np.full(n_ch, 8.0 / nperseg))
+    _require_tone(func, cap, x2, ratios, "carrier",
+                  "phase noise is measured on an unmodulated carrier or test tone")
     if _capture.is_lazy(cap):
         import dask.array as da
 
