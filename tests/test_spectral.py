@@ -796,3 +796,23 @@ def test_tone_quality_iq_image_is_a_spur_not_a_floor():
     assert float(r.noise_floor_dbfs_hz) == pytest.approx(n0_db, abs=0.1)
     assert float(r.sfdr_dbc) == pytest.approx(irr_db, abs=0.05)
     assert float(r.spur_frequency_hz) == pytest.approx(-40e3, abs=1.0)
+
+
+def test_thd_below_the_floor_is_floor_limited_not_minus_inf():
+    # Clean real tone at 50 kHz, noise only above 350 kHz (scipy Butterworth high-pass of white
+    # noise): the harmonic bins (100 .. 300 kHz) hold less than the mean noise density, so every
+    # harmonic reads below its background. THD is then the noise power in the harmonic bins
+    # over P1: finite, flagged, and below -SNR (those bins are a small part of the band).
+    n = 2**17
+    rng = np.random.default_rng(40)
+    b, a = ss.butter(8, 350e3, btype="highpass", fs=FS)
+    w = ss.lfilter(b, a, 1e-3 * rng.standard_normal(n))
+    x = 0.8 * np.cos(2 * np.pi * 50.0123e3 * np.arange(n) / FS) + w
+    r = spectral.tone_quality(quadkit.capture(x, sample_rate=FS))
+    assert np.isfinite(float(r.thd_db)) and bool(r.thd_floor_limited)
+    assert float(r.thd_db) < -float(r.snr_db)
+    # Real capture: 5 harmonic orders x 9 main-lobe bins (4-term window, +-4 bins) of the 8193
+    # one-sided bins hold that share of the noise: THD = -SNR - 10 log10(8193 / 45). The
+    # lobe-energy correction (> 0.999 of the energy) and the free-bin average move it < 0.1 dB.
+    assert float(r.thd_db) == pytest.approx(-float(r.snr_db) - 10 * np.log10(8193 / 45),
+                                            abs=0.3)
