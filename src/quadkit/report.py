@@ -288,7 +288,9 @@ def _plots(cap: xr.DataArray, summary: xr.Dataset, scheme: str | None,
     attempt("time", lambda: views.time_plot(cap))
     carrier = _dominant_tone(summary)
     if carrier is not None and _capture.is_complex(cap):
-        attempt("phase noise", lambda: views.phase_noise_plot(cap, carrier_hz=carrier))
+        # several channels: each finds its own carrier (the table's first tone is channel 0's)
+        at = None if "channel" in cap.dims else carrier
+        attempt("phase noise", lambda: views.phase_noise_plot(cap, carrier_hz=at))
     if scheme is not None and symbol_rate is not None and _capture.is_complex(cap):
         from . import modulation
 
