@@ -193,5 +193,6 @@ def warn_metadata_loss(cap: xr.DataArray, path: Any, what: str, *,
         lost.append(key)
     if lost:
         warnings.warn(
-            f"{path}: {what} stores no {', '.join(lost)}; they are left out (write SigMF "
-            "to keep them)", MetadataLossWarning, stacklevel=3)
+            f"{path}: {what} stores no {', '.join(lost)}; "
+            f"{'they are' if len(lost) > 1 else 'it is'} left out (write SigMF to keep "
+            f"{'them' if len(lost) > 1 else 'it'})", MetadataLossWarning, stacklevel=3)
