@@ -142,7 +142,7 @@ def test_non_finite_samples_are_named_first():
     x[1000] = np.nan
     x[2000] = np.inf
     s = quadkit.summarize(quadkit.capture(x, sample_rate=1e6))
-    assert s.attrs["warnings"][0].startswith("non-finite samples: 2 are NaN or Inf")
+    assert s.attrs["warnings"][0].startswith("2 non-finite samples (NaN or Inf)")
     assert "sample 1000" in s.attrs["warnings"][0]
 
 

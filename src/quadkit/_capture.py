@@ -320,11 +320,17 @@ def validate(cap: xr.DataArray) -> xr.DataArray:
         flat_first = int(np.argmin(np.asarray(finite).ravel())) if not _is_dask(cap.data) \
             else int(np.argmin(finite.ravel()).compute())
         n_time = cap.sizes["time"]
-        where = f"sample {flat_first % n_time}"
-        if cap.ndim == 2:
-            where = f"channel {flat_first // n_time}, " + where
-        plural = "sample" if bad == 1 else "samples"
         raise CaptureError(
-            f"validate: {bad} non-finite {plural} (NaN or Inf); the first is {where}"
+            "validate: " + describe_nonfinite(bad, flat_first // n_time, flat_first % n_time,
+                                              multichannel=cap.ndim == 2)
         )
     return cap
+
+
+def describe_nonfinite(count: int, channel: int, sample: int, *, multichannel: bool) -> str:
+    """'3 non-finite samples (NaN or Inf); the first is channel 1, sample 42' (one wording)."""
+    where = f"sample {sample}"
+    if multichannel:
+        where = f"channel {channel}, " + where
+    plural = "sample" if count == 1 else "samples"
+    return f"{count} non-finite {plural} (NaN or Inf); the first is {where}"

@@ -400,6 +400,29 @@ def _units(cap: xr.DataArray, scaling: str) -> tuple[str, float]:
     return (base + "/Hz" if scaling == "density" else base), float(cal or 0.0)
 
 
+def _spectrum_attrs(cap, win, *, units, window, nperseg, overlap, scaling, average,
+                    n_averages, fs, real, full_scale) -> dict[str, Any]:
+    """The attrs every spectrum carries (psd and spectrogram alike)."""
+    enbw = nperseg * np.sum(win**2) / np.sum(win) ** 2
+    return {
+        "units": units,
+        "long_name": "power spectral density" if scaling == "density" else "power spectrum",
+        "rbw_hz": float(enbw * fs / nperseg),
+        "enbw_bins": float(enbw),
+        "window": window,
+        "window_form": "periodic",
+        "nperseg": int(nperseg),
+        "overlap": float(overlap),
+        "scaling": scaling,
+        "average": average,
+        "n_averages": int(n_averages),
+        "sample_rate": fs,
+        "center_frequency": float(cap.attrs.get("center_frequency", 0.0)),
+        "onesided": bool(real),
+        "full_scale": full_scale,
+    }
+
+
 def psd(
     cap: xr.DataArray,
     *,
@@ -520,24 +543,9 @@ def psd(
         coords = _freq_coords(cap, nperseg, fs, real)
         coords["channel"] = ("channel", cap.coords["channel"].values if "channel" in cap.coords
                              else np.arange(C))
-    enbw = nperseg * np.sum(win**2) / np.sum(win) ** 2
-    attrs = {
-        "units": units,
-        "long_name": "power spectral density" if scaling == "density" else "power spectrum",
-        "rbw_hz": float(enbw * fs / nperseg),
-        "enbw_bins": float(enbw),
-        "window": window,
-        "window_form": "periodic",
-        "nperseg": int(nperseg),
-        "overlap": float(overlap),
-        "scaling": scaling,
-        "average": average,
-        "n_averages": int(nseg),
-        "sample_rate": fs,
-        "center_frequency": float(cap.attrs.get("center_frequency", 0.0)),
-        "onesided": bool(real),
-        "full_scale": fsc,
-    }
+    attrs = _spectrum_attrs(cap, win, units=units, window=window, nperseg=nperseg,
+                            overlap=overlap, scaling=scaling, average=average,
+                            n_averages=int(nseg), fs=fs, real=real, full_scale=fsc)
     if "calibration_db" in cap.attrs:
         attrs["calibration_db"] = float(cap.attrs["calibration_db"])
     if average == "median":
@@ -620,24 +628,9 @@ def spectrogram(
     else:
         dims = ("channel", "time", "frequency")
         coords["channel"] = ("channel", cap.coords["channel"].values)
-    enbw = nperseg * np.sum(win**2) / np.sum(win) ** 2
-    attrs = {
-        "units": units,
-        "long_name": "power spectral density" if scaling == "density" else "power spectrum",
-        "rbw_hz": float(enbw * fs / nperseg),
-        "enbw_bins": float(enbw),
-        "window": window,
-        "window_form": "periodic",
-        "nperseg": int(nperseg),
-        "overlap": float(overlap),
-        "scaling": scaling,
-        "average": "none",
-        "n_averages": 1,
-        "sample_rate": fs,
-        "center_frequency": float(cap.attrs.get("center_frequency", 0.0)),
-        "onesided": bool(real),
-        "full_scale": fsc,
-    }
+    attrs = _spectrum_attrs(cap, win, units=units, window=window, nperseg=nperseg,
+                            overlap=overlap, scaling=scaling, average="none", n_averages=1,
+                            fs=fs, real=real, full_scale=fsc)
     for key in ("calibration_db", "start_time"):
         if key in cap.attrs:
             attrs[key] = cap.attrs[key]

@@ -220,12 +220,11 @@ def _summarize(cap, *, scheme, symbol_rate, rolloff, max_tones, tone_threshold_d
         "clipped_fraction": clip_frac,
     }
     if n_bad:
-        where = f"sample {first_bad % n}"
-        if cap.ndim == 2:
-            where = f"channel {first_bad // n}, " + where
+        what = _capture.describe_nonfinite(n_bad, first_bad // n, first_bad % n,
+                                           multichannel=cap.ndim == 2)
         serious.append(
-            f"non-finite samples: {n_bad} are NaN or Inf (the first is {where}); figures that "
-            "use them are n/a. Look for a failed conversion or a dropped buffer"
+            f"{what}; figures that use them are n/a. Look for a failed "
+            "conversion or a dropped buffer"
         )
     if np.any(mean_p == 0):
         serious.append("the capture is all zeros (no signal at all): check the receiver")

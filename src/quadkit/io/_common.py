@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import xarray as xr
 
-from .._capture import _check_rate, full_scale, like
+from .._capture import _check_rate, describe_nonfinite, full_scale, like
 from .._errors import CaptureError
 from ._datatypes import SampleFormat, encode
 
@@ -131,14 +131,10 @@ def encoded_blocks(cap: xr.DataArray, fmt: SampleFormat, source: Any) -> Iterato
         else:
             yield encode(block, fmt).tobytes()
     if first_bad is not None:
-        where = f"sample {first_bad[0]}"
-        if cap.ndim == 2:
-            where = f"channel {first_bad[1]}, " + where
-        plural = "sample" if bad == 1 else "samples"
+        what = describe_nonfinite(bad, first_bad[1], first_bad[0], multichannel=cap.ndim == 2)
         raise CaptureError(
-            f"{source}: {bad} non-finite {plural} (NaN or Inf) cannot be stored as "
-            f"{fmt.name}; the first is {where}; replace them or write a float datatype "
-            "such as cf32_le"
+            f"{source}: {what}; they cannot be stored as {fmt.name}: replace them or write a "
+            "float datatype such as cf32_le"
         )
     if clipped:
         total = cap.size
