@@ -80,16 +80,7 @@ __all__ = [
     "instantaneous_frequency",
 ]
 
-_ACCESSOR = (
-    "measure_tone",
-    "sine_fit",
-    "iq_components",
-    "harmonics",
-    "analytic",
-    "envelope",
-    "instantaneous_phase",
-    "instantaneous_frequency",
-)
+_ACCESSOR = tuple(__all__)  # every public function here takes a capture first
 
 #: Samples per inner block of every pass (a multiple of every Welch segment length used).
 _BLOCK = 1 << 16
