@@ -291,12 +291,16 @@ class _Moments:
         return out
 
 
-class _RealGram:
-    """Augmented Gram matrix of [cos wm, sin wm, 1, u cos wm, u sin wm, x], u = m / h."""
+class _Gram:
+    """Block kernels of the four-parameter fits share one state: (ratio, centre, scale, base)."""
 
     @staticmethod
     def prepare(blen: int, ratio: np.ndarray, centre: float, scale: float) -> tuple:
         return ratio, centre, scale, _base(ratio, blen)
+
+
+class _RealGram(_Gram):
+    """Augmented Gram matrix of [cos wm, sin wm, 1, u cos wm, u sin wm, x], u = m / h."""
 
     @staticmethod
     def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
@@ -943,13 +947,9 @@ def _finish_fit(gram: np.ndarray, ratio: np.ndarray, n: int, real: bool, full_sc
     }
 
 
-class _ComplexGram:
+class _ComplexGram(_Gram):
     """Augmented Hermitian Gram of [exp(j w m), 1, u exp(j w m), x], u = m / h (complex
     four-parameter fit: amplitude, phase, complex offset, frequency)."""
-
-    @staticmethod
-    def prepare(blen: int, ratio: np.ndarray, centre: float, scale: float) -> tuple:
-        return ratio, centre, scale, _base(ratio, blen)
 
     @staticmethod
     def apply(x: np.ndarray, offset: int, state: tuple) -> np.ndarray:
